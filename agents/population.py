@@ -1,0 +1,367 @@
+"""The trader population: state as columns, Mesa agents as a view on the rows.
+
+A market of a million traders cannot afford a Python object per trader in its inner loop, so the
+state of every trader lives in one numpy array per attribute (:class:`Population`). Rules and
+drifts work on whole columns. :class:`Trader` is a real ``mesa.Agent`` whose attributes read and
+write its row, so ``model.agents``, Mesa's ``DataCollector`` and per-agent plugins still work.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields, replace
+
+import numpy as np
+
+from propensim.agents._checks import (
+    as_float_array,
+    check_nonnegative,
+    check_positive,
+    check_unit_interval,
+)
+
+BUYER = 0
+SELLER = 1
+ROLE_NAMES = ("buyer", "seller")
+
+#: Columns holding one float per trader, in the order they are documented.
+FLOAT_COLUMNS = ("mu", "sigma", "activity", "gamma", "value", "cash")
+#: Columns holding one integer per trader.
+INT_COLUMNS = ("stock", "capacity")
+
+
+@dataclass(eq=False)
+class Population:
+    """Trader state as parallel columns, one row per trader.
+
+    Parameters
+    ----------
+    role : ndarray of int8, shape (n,)
+        ``0`` for a buyer, ``1`` for a seller (see :data:`BUYER`, :data:`SELLER`).
+    mu : ndarray, shape (n,)
+        Preferred price: the centre of the trader's propensity curve (price units).
+    sigma : ndarray, shape (n,)
+        Width of the curve: the trader's price uncertainty (price units, > 0).
+    activity : ndarray, shape (n,)
+        Height of the curve, in (0, 1]: the largest probability of accepting any trade.
+    gamma : ndarray, shape (n,)
+        Entropic energy scale (energy units, > 0): force = gamma * d/dx ln P.
+    value : ndarray, shape (n,)
+        Private value of one unit for a buyer, unit cost for a seller (price units).
+    cash : ndarray, shape (n,)
+        Money a buyer may spend; ``inf`` means no budget constraint. Sellers' cash grows with sales.
+    stock : ndarray of int64, shape (n,)
+        Units held. Sellers sell from it; buyers' stock grows with purchases.
+    capacity : ndarray of int64, shape (n,)
+        Most units a trader may trade in one round.
+    curve : str
+        Curve family shared by the population (a ``propensim.curves`` plugin name).
+    curve_params : dict of str to ndarray
+        Extra per-trader parameters of that family, first axis of length n
+        (``weights`` of shape (n, K+1) for ``oscillator``; ``tau`` for ``logistic``).
+    """
+
+    role: np.ndarray
+    mu: np.ndarray
+    sigma: np.ndarray
+    activity: np.ndarray
+    gamma: np.ndarray
+    value: np.ndarray
+    cash: np.ndarray
+    stock: np.ndarray
+    capacity: np.ndarray
+    curve: str = "normal"
+    curve_params: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        self.role = np.asarray(self.role, dtype=np.int8)
+        n = self.role.shape[0]
+        if self.role.ndim != 1:
+            raise ValueError("role must be a 1-D array of 0 (buyer) and 1 (seller)")
+        if np.any((self.role != BUYER) & (self.role != SELLER)):
+            raise ValueError("role must contain only 0 (buyer) and 1 (seller)")
+        for name in FLOAT_COLUMNS:
+            arr = np.array(np.broadcast_to(getattr(self, name), (n,)), dtype=float)
+            setattr(self, name, arr)
+        for name in INT_COLUMNS:
+            arr = np.array(np.broadcast_to(getattr(self, name), (n,)), dtype=np.int64)
+            setattr(self, name, arr)
+        self.curve_params = {k: np.asarray(v, dtype=float) for k, v in self.curve_params.items()}
+        self.validate()
+
+    # -- shape -----------------------------------------------------------------------------
+    def __len__(self) -> int:
+        return self.role.shape[0]
+
+    @property
+    def buyers(self) -> np.ndarray:
+        """Row indices of the buyers, ascending."""
+        return np.flatnonzero(self.role == BUYER)
+
+    @property
+    def sellers(self) -> np.ndarray:
+        """Row indices of the sellers, ascending."""
+        return np.flatnonzero(self.role == SELLER)
+
+    @property
+    def is_buyer(self) -> np.ndarray:
+        """Boolean mask of buyers, shape (n,)."""
+        return self.role == BUYER
+
+    def validate(self) -> None:
+        """Raise ``ValueError`` naming the first column that breaks its allowed range."""
+        n = len(self)
+        for name in (*FLOAT_COLUMNS, *INT_COLUMNS):
+            if getattr(self, name).shape != (n,):
+                raise ValueError(f"{name} has length {getattr(self, name).shape}, expected ({n},)")
+        as_float_array("mu", self.mu)
+        as_float_array("value", self.value)
+        check_positive("sigma", self.sigma)
+        check_unit_interval("activity", self.activity)
+        check_positive("gamma", self.gamma)
+        check_nonnegative("cash", self.cash, allow_inf=True)
+        check_nonnegative("stock", self.stock)
+        check_nonnegative("capacity", self.capacity)
+        for key, arr in self.curve_params.items():
+            if arr.shape[:1] != (n,):
+                raise ValueError(f"curve_params[{key!r}] has first axis {arr.shape[:1]}, expected {n}")
+
+    # -- curves ----------------------------------------------------------------------------
+    def curves(self, idx: np.ndarray | slice | None = None):
+        """The propensity curves of the rows ``idx`` as one vectorised curve object.
+
+        The returned curve's parameters have shape ``(len(idx),)``; evaluating it at prices of
+        shape ``(m, 1)`` gives an ``(m, len(idx))`` table.
+        """
+        from propensim.plugins.registry import get_plugin  # plugins own the family registry
+
+        sel = slice(None) if idx is None else idx
+        family = get_plugin("curves", self.curve)
+        extra = {k: v[sel] for k, v in self.curve_params.items()}
+        return family.from_population(
+            mu=self.mu[sel], sigma=self.sigma[sel], activity=self.activity[sel],
+            role=self.role[sel], **extra,
+        )
+
+    # -- copies ----------------------------------------------------------------------------
+    def copy(self) -> Population:
+        """A deep copy: the columns are new arrays."""
+        cols = {f.name: np.copy(getattr(self, f.name)) for f in fields(self) if f.name != "curve"}
+        cols["curve_params"] = {k: np.copy(v) for k, v in self.curve_params.items()}
+        return replace(self, **cols)
+
+    def row(self, i: int) -> dict[str, float | int | str]:
+        """One trader's state as a plain dict (for display and per-agent code)."""
+        out: dict[str, float | int | str] = {"index": int(i), "role": ROLE_NAMES[self.role[i]]}
+        for name in FLOAT_COLUMNS:
+            out[name] = float(getattr(self, name)[i])
+        for name in INT_COLUMNS:
+            out[name] = int(getattr(self, name)[i])
+        return out
+
+
+def _draw(name: str, spec, size: int, rng: np.random.Generator) -> np.ndarray:
+    """Draw ``size`` values from a distribution spec.
+
+    A spec is a number (constant), a pair ``[low, high]`` (uniform), or a one-key mapping:
+    ``{"uniform": [low, high]}``, ``{"normal": [mean, sd]}``, ``{"lognormal": [mean, sd]}``
+    (of the log), ``{"values": [...]}`` (given values, length ``size``), or
+    ``{"linspace": [first, last]}`` (evenly spaced, deterministic: stepped supply and demand).
+    """
+    if isinstance(spec, int | float) and not isinstance(spec, bool):
+        return np.full(size, float(spec))
+    if isinstance(spec, list | tuple) and len(spec) == 2:
+        spec = {"uniform": list(spec)}
+    if isinstance(spec, np.ndarray):
+        spec = {"values": spec}
+    if not isinstance(spec, Mapping) or len(spec) != 1:
+        raise ValueError(
+            f"{name} must be a number, [low, high], or one of "
+            "{uniform|normal|lognormal|linspace: [a, b]} or {values: [...]}, "
+            f"got {spec!r}"
+        )
+    (kind, args), = spec.items()
+    if kind == "values":
+        arr = as_float_array(name, args)
+        if arr.shape != (size,):
+            raise ValueError(f"{name}.values has {arr.size} entries, expected {size}")
+        return arr.copy()
+    a, b = (float(x) for x in as_float_array(name, args).reshape(-1)[:2])
+    if kind == "uniform":
+        if b < a:
+            raise ValueError(f"{name}.uniform must be [low, high] with low <= high, got {[a, b]}")
+        return rng.uniform(a, b, size)
+    if kind == "normal":
+        check_nonnegative(f"{name}.normal sd", b)
+        return rng.normal(a, b, size)
+    if kind == "lognormal":
+        check_nonnegative(f"{name}.lognormal sd", b)
+        return rng.lognormal(a, b, size)
+    if kind == "linspace":
+        return np.linspace(a, b, size)
+    raise ValueError(
+        f"{name} has unknown distribution {kind!r}; allowed: uniform, normal, lognormal, "
+        "linspace, values"
+    )
+
+
+def build_population(
+    n_buyers: int,
+    n_sellers: int,
+    *,
+    value=(80.0, 120.0),
+    cost=(60.0, 100.0),
+    shade=0.0,
+    sigma=5.0,
+    activity=1.0,
+    gamma=1.0,
+    cash=float("inf"),
+    stock: int = 1,
+    capacity: int = 1,
+    curve: str = "normal",
+    curve_params: Mapping | None = None,
+    rng: np.random.Generator | int | None = None,
+) -> Population:
+    """Build a population of buyers (rows first) followed by sellers.
+
+    Parameters
+    ----------
+    n_buyers, n_sellers : int
+        How many of each (>= 0, at least one trader in all).
+    value, cost : distribution spec
+        Buyers' private values and sellers' unit costs (see ``_draw``: a number, ``[low, high]``,
+        or ``{"normal": [mean, sd]}`` and friends).
+    shade : distribution spec
+        How far a trader's preferred price starts from its value toward a better deal:
+        ``mu = value - shade`` for buyers and ``mu = cost + shade`` for sellers.
+    sigma, activity, gamma : distribution spec
+        Curve width (> 0), height in (0, 1], and entropic energy scale (> 0).
+    cash : distribution spec
+        Buyers' budgets (``inf``: unconstrained). Sellers start with no cash.
+    stock : int
+        Units each seller holds at the start (buyers hold none).
+    capacity : int
+        Most units a trader may trade in one round.
+    curve : str
+        Curve family name (a registered ``propensim.curves`` plugin).
+    curve_params : mapping, optional
+        Extra family parameters; a 1-D entry is shared by every trader (for example oscillator
+        ``weights=[0.8, 0.0, 0.2]``), an entry with first axis n is per trader.
+    rng : numpy.random.Generator or int, optional
+        Source of all randomness (normalised with ``numpy.random.default_rng``).
+
+    Returns
+    -------
+    Population
+
+    Examples
+    --------
+    >>> pop = build_population(3, 2, value=100.0, cost=90.0, sigma=4.0, rng=1)
+    >>> len(pop), pop.buyers.tolist(), pop.sellers.tolist()
+    (5, [0, 1, 2], [3, 4])
+    """
+    for name, count in (("n_buyers", n_buyers), ("n_sellers", n_sellers),
+                        ("stock", stock), ("capacity", capacity)):
+        if isinstance(count, bool) or not isinstance(count, int | np.integer) or count < 0:
+            raise ValueError(f"{name} must be a whole number >= 0, got {count!r}")
+    n = n_buyers + n_sellers
+    if n == 0:
+        raise ValueError("n_buyers + n_sellers must be at least 1")
+    rng = np.random.default_rng(rng)
+    role = np.concatenate([np.full(n_buyers, BUYER), np.full(n_sellers, SELLER)]).astype(np.int8)
+    vals = np.concatenate([_draw("value", value, n_buyers, rng), _draw("cost", cost, n_sellers, rng)])
+    shades = _draw("shade", shade, n, rng)
+    mu = np.where(role == BUYER, vals - shades, vals + shades)
+    budget = np.where(role == BUYER, _draw("cash", cash, n, rng), 0.0)
+    params = {}
+    for key, arr in (curve_params or {}).items():
+        arr = np.asarray(arr, dtype=float)
+        # A scalar, or the level weights given once, are shared by every trader.
+        shared = arr.ndim == 0 or (key == "weights" and arr.ndim == 1)
+        params[key] = np.broadcast_to(arr, (n, *arr.shape)).copy() if shared else arr
+    return Population(
+        role=role,
+        mu=mu,
+        sigma=_draw("sigma", sigma, n, rng),
+        activity=_draw("activity", activity, n, rng),
+        gamma=_draw("gamma", gamma, n, rng),
+        value=vals,
+        cash=budget,
+        stock=np.where(role == SELLER, stock, 0),
+        capacity=np.full(n, capacity),
+        curve=curve,
+        curve_params=params,
+    )
+
+
+class _Column:
+    """Descriptor: a Trader attribute that reads and writes its row of a population column."""
+
+    def __set_name__(self, owner, name: str) -> None:
+        self.name = name
+
+    def __get__(self, obj, objtype=None):
+        if obj is None:
+            return self
+        return getattr(obj._population, self.name)[obj.index].item()
+
+    def __set__(self, obj, val) -> None:
+        getattr(obj._population, self.name)[obj.index] = val
+
+
+def _trader_class():
+    """Build the Trader class on first use, so importing agents does not import mesa."""
+    import mesa
+
+    class Trader(mesa.Agent):
+        """One trader as a ``mesa.Agent``: a view on row ``index`` of the model's population.
+
+        Attributes ``mu``, ``sigma``, ``activity``, ``gamma``, ``value``, ``cash``, ``stock`` and
+        ``capacity`` read and write the population arrays, so array rules and per-agent code see
+        the same state.
+        """
+
+        mu = _Column()
+        sigma = _Column()
+        activity = _Column()
+        gamma = _Column()
+        value = _Column()
+        cash = _Column()
+        stock = _Column()
+        capacity = _Column()
+
+        def __init__(self, model, population: Population, index: int) -> None:
+            super().__init__(model)
+            self._population = population
+            self.index = int(index)
+
+        @property
+        def role(self) -> str:
+            """``"buyer"`` or ``"seller"``."""
+            return ROLE_NAMES[self._population.role[self.index]]
+
+        @property
+        def is_buyer(self) -> bool:
+            """True for a buyer."""
+            return bool(self._population.role[self.index] == BUYER)
+
+        def curve(self):
+            """This trader's propensity curve (scalar parameters)."""
+            return self._population.curves(np.array([self.index]))
+
+        def __repr__(self) -> str:
+            return f"Trader(index={self.index}, role={self.role!r}, mu={self.mu:.4g})"
+
+    return Trader
+
+
+_TRADER = None
+
+
+def __getattr__(name: str):
+    global _TRADER
+    if name == "Trader":
+        if _TRADER is None:
+            _TRADER = _trader_class()
+        return _TRADER
+    raise AttributeError(name)
