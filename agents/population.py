@@ -124,7 +124,9 @@ class Population:
         check_nonnegative("capacity", self.capacity)
         for key, arr in self.curve_params.items():
             if arr.shape[:1] != (n,):
-                raise ValueError(f"curve_params[{key!r}] has first axis {arr.shape[:1]}, expected {n}")
+                raise ValueError(
+                    f"curve_params[{key!r}] has first axis {arr.shape[:1]}, expected {n}"
+                )
 
     # -- curves ----------------------------------------------------------------------------
     def curves(self, idx: np.ndarray | slice | None = None):
@@ -139,8 +141,11 @@ class Population:
         family = get_plugin("curves", self.curve)
         extra = {k: v[sel] for k, v in self.curve_params.items()}
         return family.from_population(
-            mu=self.mu[sel], sigma=self.sigma[sel], activity=self.activity[sel],
-            role=self.role[sel], **extra,
+            mu=self.mu[sel],
+            sigma=self.sigma[sel],
+            activity=self.activity[sel],
+            role=self.role[sel],
+            **extra,
         )
 
     # -- copies ----------------------------------------------------------------------------
@@ -180,7 +185,7 @@ def _draw(name: str, spec, size: int, rng: np.random.Generator) -> np.ndarray:
             "{uniform|normal|lognormal|linspace: [a, b]} or {values: [...]}, "
             f"got {spec!r}"
         )
-    (kind, args), = spec.items()
+    ((kind, args),) = spec.items()
     if kind == "values":
         arr = as_float_array(name, args)
         if arr.shape != (size,):
@@ -260,8 +265,12 @@ def build_population(
     >>> len(pop), pop.buyers.tolist(), pop.sellers.tolist()
     (5, [0, 1, 2], [3, 4])
     """
-    for name, count in (("n_buyers", n_buyers), ("n_sellers", n_sellers),
-                        ("stock", stock), ("capacity", capacity)):
+    for name, count in (
+        ("n_buyers", n_buyers),
+        ("n_sellers", n_sellers),
+        ("stock", stock),
+        ("capacity", capacity),
+    ):
         if isinstance(count, bool) or not isinstance(count, int | np.integer) or count < 0:
             raise ValueError(f"{name} must be a whole number >= 0, got {count!r}")
     n = n_buyers + n_sellers
@@ -269,15 +278,17 @@ def build_population(
         raise ValueError("n_buyers + n_sellers must be at least 1")
     rng = np.random.default_rng(rng)
     role = np.concatenate([np.full(n_buyers, BUYER), np.full(n_sellers, SELLER)]).astype(np.int8)
-    vals = np.concatenate([_draw("value", value, n_buyers, rng), _draw("cost", cost, n_sellers, rng)])
+    vals = np.concatenate(
+        [_draw("value", value, n_buyers, rng), _draw("cost", cost, n_sellers, rng)]
+    )
     shades = _draw("shade", shade, n, rng)
     mu = np.where(role == BUYER, vals - shades, vals + shades)
     budget = np.where(role == BUYER, _draw("cash", cash, n, rng), 0.0)
     params = {}
     for key, arr in (curve_params or {}).items():
         arr = np.asarray(arr, dtype=float)
-        # A scalar, or the level weights given once, are shared by every trader.
-        shared = arr.ndim == 0 or (key == "weights" and arr.ndim == 1)
+        # A scalar, or level weights or a table (grid, values) given once, is shared by all.
+        shared = arr.ndim == 0 or (key in ("weights", "grid", "values") and arr.ndim == 1)
         params[key] = np.broadcast_to(arr, (n, *arr.shape)).copy() if shared else arr
     return Population(
         role=role,
@@ -346,7 +357,7 @@ def _trader_class():
             return bool(self._population.role[self.index] == BUYER)
 
         def curve(self):
-            """This trader's propensity curve (scalar parameters)."""
+            """The propensity curve of this trader (scalar parameters)."""
             return self._population.curves(np.array([self.index]))
 
         def __repr__(self) -> str:

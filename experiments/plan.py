@@ -56,7 +56,8 @@ class RunPlan:
     seed_key : tuple of int
         Spawn key of this run below the root: ``(point, replicate)``.
     collect : dict
-        What to keep beyond the summary: ``rounds`` (bool), ``traders_every`` (int), ``ledger`` (bool).
+        What to keep beyond the summary: ``rounds`` (bool), ``traders_every`` (int),
+        ``ledger`` (bool).
     """
 
     index: int

@@ -1,8 +1,9 @@
-"""The market engine: the round loop over trader columns, a trading network and three kinds of plugin.
+"""The market engine: the round loop over trader columns, a network and three kinds of plugin.
 
 One round is one pass, with no back and forth::
 
-    population columns -> clearing rule -> trades (checked, applied) -> drift rule -> metrics -> one row
+    population columns -> clearing rule -> trades (checked, applied) -> drift rule
+        -> metrics -> one row
 
 Rules read the state and return arrays; the market alone writes state. Randomness comes from one
 seed per market, split into named streams (population, network, clearing, drift, mesa) so that a
@@ -238,7 +239,9 @@ class MarketEngine:
         import pandas as pd
 
         if not self._snapshots:
-            return pd.DataFrame(columns=["round", "trader", "mu", "sigma", "stock", "cash", "traded"])
+            return pd.DataFrame(
+                columns=["round", "trader", "mu", "sigma", "stock", "cash", "traded"]
+            )
         return pd.DataFrame(
             {k: np.concatenate([s[k] for s in self._snapshots]) for k in self._snapshots[0]}
         )
@@ -250,7 +253,6 @@ class MarketEngine:
             vals = np.array([row[name] for row in self._rows], dtype=float)
             out[name] = _aggregate(vals, getattr(metric, "aggregate", "mean"))
         return out
-
 
 
 def _aggregate(vals: np.ndarray, how: str) -> float:

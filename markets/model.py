@@ -24,8 +24,9 @@ class Market(MarketEngine, mesa.Model):
     [0, 1, 2, 3, 4]
     """
 
-    def __init__(self, population, network, clearing, drift=None, metrics=None, *, seed=None,
-                 **options) -> None:
+    def __init__(
+        self, population, network, clearing, drift=None, metrics=None, *, seed=None, **options
+    ) -> None:
         mesa_seed = int(spawn_streams(seed)["mesa"].integers(2**63 - 1))
         mesa.Model.__init__(self, rng=mesa_seed)
         self._traders = None
@@ -51,4 +52,3 @@ class Market(MarketEngine, mesa.Model):
             from propensim.agents.population import Trader
 
             self._traders = [Trader(self, self.population, i) for i in range(len(self.population))]
-

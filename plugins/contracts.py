@@ -91,6 +91,7 @@ class Metric(Protocol):
         ``state``: the market state at the end of the round; ``outcome``: its trades.
     Output
         a float (NaN where undefined, for example a price with no trade).
+
     Attributes
         ``aggregate``: how a run's rounds are summarised into one number, one of ``"mean"``,
         ``"sum"``, ``"last"``, ``"final_half_mean"``.
@@ -140,6 +141,10 @@ class CurveFamily(Protocol):
 
     description: ClassVar[str]
 
-    def value(self, x): ...
+    def value(self, x):
+        """Acceptance probability at prices ``x``."""
+        ...
 
-    def log_value(self, x): ...
+    def log_value(self, x):
+        """Natural log of :meth:`value`, finite far into the tails."""
+        ...

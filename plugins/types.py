@@ -135,7 +135,7 @@ class TradingNetwork:
         return self.buyer * np.int64(self.n) + self.seller
 
     def has_edge(self, buyer: np.ndarray, seller: np.ndarray) -> np.ndarray:
-        """Boolean mask: does each (buyer, seller) pair share an edge?"""
+        """Boolean mask: True where a (buyer, seller) pair shares an edge."""
         key = np.asarray(buyer, dtype=np.int64) * np.int64(self.n) + np.asarray(seller, np.int64)
         if self.n_edges == 0:
             return np.zeros(key.shape, dtype=bool)
@@ -144,15 +144,19 @@ class TradingNetwork:
 
     @cached_property
     def buyer_ptr(self) -> np.ndarray:
-        """CSR offsets by buyer row, shape (n + 1,): buyer i's sellers are
-        ``seller[buyer_ptr[i]:buyer_ptr[i + 1]]``."""
+        """CSR offsets by buyer row, shape (n + 1,).
+
+        Buyer i's sellers are ``seller[buyer_ptr[i]:buyer_ptr[i + 1]]``.
+        """
         counts = np.bincount(self.buyer, minlength=self.n)
         return np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
 
     @cached_property
     def degree(self) -> np.ndarray:
         """Number of trading partners of each trader, shape (n,)."""
-        return np.bincount(self.buyer, minlength=self.n) + np.bincount(self.seller, minlength=self.n)
+        return np.bincount(self.buyer, minlength=self.n) + np.bincount(
+            self.seller, minlength=self.n
+        )
 
     @cached_property
     def component(self) -> np.ndarray:
@@ -161,7 +165,8 @@ class TradingNetwork:
         from scipy.sparse.csgraph import connected_components
 
         adj = coo_matrix(
-            (np.ones(self.n_edges, dtype=np.int8), (self.buyer, self.seller)), shape=(self.n, self.n)
+            (np.ones(self.n_edges, dtype=np.int8), (self.buyer, self.seller)),
+            shape=(self.n, self.n),
         )
         _, labels = connected_components(adj, directed=False)
         return labels.astype(np.int64)
