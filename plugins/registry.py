@@ -112,7 +112,7 @@ def get_plugin(kind: str, name: str):
         close = difflib.get_close_matches(str(name), known, n=1)
         hint = f"; did you mean {close[0]!r}?" if close else ""
         raise UnknownPluginError(
-            f"unknown {kind} plugin {name!r}{hint} known: {', '.join(known) or '(none)'}"
+            f"unknown {kind} plugin {name!r}{hint}; known: {', '.join(known) or '(none)'}"
         )
     return obj
 

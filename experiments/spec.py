@@ -1,0 +1,1386 @@
+"""Experiment spec files: read, check and expand an experiment into run plans.
+
+A spec is a TOML file (or the same structure as a Python dict) with the sections ``experiment``
+(name, seed, rounds, replicates), ``population`` (keyword arguments of
+:func:`~propensim.agents.population.build_population`), ``network``, ``clearing`` and ``drift``
+(plugins: a ``name`` and its parameters), ``market`` (engine options), ``collect`` (what to keep),
+``design`` (a sweep over dotted field paths, see :mod:`propensim.experiments.designs`), ``arms``
+(comparison arms, each overriding dotted fields) and ``compare`` (how the arms are compared).
+``experiments/examples/demo.toml`` is a commented example of every section.
+
+Everything is checked before anything runs, and every problem becomes one :class:`SpecError` whose
+one-line message reads ``FILE:LINE: field.path: what is wrong; allowed: ...``. Plugin names and
+parameters are checked through the plugin registry, population parameters by building a tiny
+population, and every distinct run configuration (every arm at every design point) is checked,
+since a design may push a parameter out of its range.
+
+Arms and design points override dotted fields of the base configuration, arm first, then point.
+An override that changes a plugin's ``name`` (``clearing.name = "call_auction"``) starts that
+plugin's table afresh: only the parameters set by the same arm or point are kept, because the
+parameters of one rule generally mean nothing to another.
+
+Seeds: run ``(point, replicate)`` gets ``SeedSequence(seed, spawn_key=(point, replicate))``,
+shared by every arm of that replicate (common random numbers); random, Latin hypercube and Sobol'
+designs draw from ``SeedSequence(seed, spawn_key=(DESIGN_SPAWN_KEY,))``, a stream no run uses.
+
+Defaults are written out: :meth:`Spec.resolved` and every run's ``config`` hold every parameter
+of the population and of each plugin (from their signatures), so a stored spec records each value
+a run used, and a changed default changes the run ids (the store then reruns, as it should).
+
+References
+----------
+Law, A. M. (2015). *Simulation Modeling and Analysis*, 5th ed., McGraw-Hill, chapter 11
+(variance reduction: common random numbers for comparing alternatives).
+
+NumPy documentation, "Parallel random number generation" (``SeedSequence`` spawn keys).
+"""
+
+from __future__ import annotations
+
+import copy
+import functools
+import hashlib
+import inspect
+import json
+import re
+import tomllib
+import warnings
+from bisect import bisect_right
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union, get_args, get_origin
+
+import numpy as np
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+from propensim.experiments import designs
+from propensim.experiments.plan import RunPlan, canonical_json
+
+__all__ = ["CompareOptions", "Spec", "SpecError", "format_path", "load_spec", "parse_override"]
+
+#: Sections of a run configuration that arms and design points may override.
+CONFIG_SECTIONS = ("population", "network", "clearing", "drift", "market")
+#: Config sections holding a plugin, with the registry kind of each.
+PLUGIN_KINDS = {"network": "networks", "clearing": "clearing", "drift": "drift"}
+#: Spawn key (below the root seed) of the random stream of sampled designs.
+DESIGN_SPAWN_KEY = 0xDE5167
+_NAME_PATTERN = r"^[A-Za-z0-9_-]+$"
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+_DISTRIBUTIONS = ("uniform", "normal", "lognormal", "linspace")
+
+
+# ---------------------------------------------------------------------------------------------
+# The error
+# ---------------------------------------------------------------------------------------------
+class SpecError(ValueError):
+    """A problem in an experiment spec, reported on one line.
+
+    The message reads ``FILE:LINE: field.path: what is wrong; allowed: ...``; ``FILE`` and ``LINE``
+    are left out when the spec did not come from a file or the problem has no line.
+
+    Attributes
+    ----------
+    problem : str
+        What is wrong (one line).
+    path : str or None
+        The field path, e.g. ``population.n_buyers`` or ``arms[1].name``.
+    file : str or None
+        The spec file.
+    line : int or None
+        Line in the file (1-based).
+    """
+
+    def __init__(
+        self,
+        problem: str,
+        *,
+        path: str | None = None,
+        file: str | None = None,
+        line: int | None = None,
+    ) -> None:
+        self.problem = _one_line(problem)
+        self.path = path
+        self.file = file
+        self.line = line
+        where = ""
+        if file is not None:
+            where = f"{file}:{line}: " if line is not None else f"{file}: "
+        super().__init__(f"{where}{path + ': ' if path else ''}{self.problem}")
+
+
+def _one_line(text: Any) -> str:
+    return " ".join(str(text).split())
+
+
+class _Problem(Exception):
+    """Internal: a problem at a field path (a tuple), located and formatted later."""
+
+    def __init__(self, path: tuple, problem: str) -> None:
+        super().__init__(problem)
+        self.path = tuple(path)
+        self.problem = problem
+
+
+def format_path(path: Iterable) -> str:
+    """Display a field path tuple the way a TOML file spells it.
+
+    ``("design", "parameters", "population.sigma")`` -> ``design.parameters."population.sigma"``;
+    list indices as ``[i]``.
+    """
+    out = ""
+    for p in path:
+        if isinstance(p, int):
+            out += f"[{p}]"
+        else:
+            p = str(p)
+            out += ("." if out else "") + (p if _BARE_KEY.fullmatch(p) else json.dumps(p))
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Line numbers: a small scanner over (valid) TOML text
+# ---------------------------------------------------------------------------------------------
+class _Locator:
+    """Line numbers of the tables, keys and array elements of a TOML text.
+
+    ``lines[path]`` is the line where the table header, key or array element ``path`` (a tuple of
+    keys and list indices, as in the parsed document) starts. The text must already have parsed
+    with :mod:`tomllib`; this scanner only records positions.
+    """
+
+    def __init__(self, text: str) -> None:
+        self.s = text
+        self.i = 0
+        self.newlines = [m.start() for m in re.finditer("\n", text)]
+        self.lines: dict[tuple, int] = {}
+        self.aot: dict[tuple, int] = {}
+        try:
+            self._document()
+        except (IndexError, ValueError, tomllib.TOMLDecodeError):  # pragma: no cover - best effort
+            pass
+
+    def line_of(self, pos: int) -> int:
+        return bisect_right(self.newlines, pos - 1) + 1
+
+    def find(self, path: Sequence) -> int | None:
+        """Line of the longest prefix of ``path`` found in the text (None if no prefix is)."""
+        path = tuple(path)
+        for k in range(len(path), 0, -1):
+            if path[:k] in self.lines:
+                return self.lines[path[:k]]
+        return None
+
+    def _record(self, path: tuple, pos: int) -> None:
+        self.lines.setdefault(path, self.line_of(pos))
+
+    # -- lexical pieces ------------------------------------------------------------------------
+    def _peek(self, n: int = 1) -> str:
+        return self.s[self.i : self.i + n]
+
+    def _skip(self, newlines: bool = True) -> None:
+        s = self.s
+        while self.i < len(s):
+            c = s[self.i]
+            if c in " \t\r" or (newlines and c == "\n"):
+                self.i += 1
+            elif c == "#":
+                while self.i < len(s) and s[self.i] != "\n":
+                    self.i += 1
+            else:
+                break
+
+    def _string(self) -> str:
+        s, start = self.s, self.i
+        for quote in ('"""', "'''"):
+            if s.startswith(quote, self.i):
+                self.i += 3
+                while not s.startswith(quote, self.i):
+                    self.i += 2 if (quote == '"""' and s[self.i] == "\\") else 1
+                self.i += 3
+                extra = 0
+                while extra < 2 and self.i < len(s) and s[self.i] == quote[0]:
+                    self.i += 1  # up to two quotes may end the content
+                    extra += 1
+                return ""
+        quote = s[self.i]
+        self.i += 1
+        while s[self.i] != quote:
+            self.i += 2 if (quote == '"' and s[self.i] == "\\") else 1
+        self.i += 1
+        raw = s[start : self.i]
+        return tomllib.loads(f"k = {raw}")["k"]
+
+    def _key(self) -> tuple:
+        parts = []
+        while True:
+            self._skip(newlines=False)
+            if self._peek() in ('"', "'"):
+                parts.append(self._string())
+            else:
+                m = _BARE_KEY.match(self.s, self.i)
+                if m is None:
+                    raise ValueError("bad key")
+                parts.append(m.group())
+                self.i = m.end()
+            self._skip(newlines=False)
+            if self._peek() == ".":
+                self.i += 1
+                continue
+            return tuple(parts)
+
+    def _resolve(self, key: tuple) -> tuple:
+        """Header key -> document path, inserting the current index of arrays of tables."""
+        out: tuple = ()
+        for k in range(len(key)):
+            out = (*out, key[k])
+            if key[: k + 1] in self.aot and k < len(key) - 1:
+                out = (*out, self.aot[key[: k + 1]])
+        return out
+
+    # -- grammar -------------------------------------------------------------------------------
+    def _document(self) -> None:
+        table: tuple = ()
+        while True:
+            self._skip()
+            if self.i >= len(self.s):
+                return
+            start = self.i
+            if self._peek(2) == "[[":
+                self.i += 2
+                key = self._key()
+                self.i += 2
+                idx = self.aot.get(key, -1) + 1
+                self.aot[key] = idx
+                # deeper arrays of tables restart when their parent element changes
+                for k in [k for k in self.aot if len(k) > len(key) and k[: len(key)] == key]:
+                    del self.aot[k]
+                table = (*self._resolve(key), idx)
+                self._record(table, start)
+            elif self._peek() == "[":
+                self.i += 1
+                key = self._key()
+                self.i += 1
+                table = self._resolve(key)
+                self._record(table, start)
+            else:
+                key = self._key()
+                self._skip(newlines=False)
+                self.i += 1  # "="
+                path = (*table, *key)
+                self._record(path, start)
+                self._skip(newlines=False)
+                self._value(path)
+
+    def _value(self, path: tuple) -> None:
+        s = self.s
+        c = s[self.i]
+        if c in ('"', "'"):
+            self._string()
+        elif c == "[":
+            self.i += 1
+            idx = 0
+            while True:
+                self._skip()
+                if s[self.i] == "]":
+                    self.i += 1
+                    return
+                self._record((*path, idx), self.i)
+                self._value((*path, idx))
+                self._skip()
+                if s[self.i] == ",":
+                    self.i += 1
+                    idx += 1
+        elif c == "{":
+            self.i += 1
+            while True:
+                self._skip()
+                if s[self.i] == "}":
+                    self.i += 1
+                    return
+                start = self.i
+                key = self._key()
+                self._skip()
+                self.i += 1  # "="
+                self._record((*path, *key), start)
+                self._skip()
+                self._value((*path, *key))
+                self._skip()
+                if s[self.i] == ",":
+                    self.i += 1
+        else:
+            m = re.compile(r"[^,\]}\n#]*").match(s, self.i)
+            self.i = m.end()
+
+
+def _parse_key(text: str) -> tuple:
+    """A dotted TOML key (bare or quoted parts) as a tuple; ValueError if it is not one."""
+    loc = _Locator("")
+    loc.s, loc.i = text, 0
+    path = loc._key()
+    if loc.i != len(text) or not path:
+        raise ValueError(f"not a dotted key: {text!r}")
+    return path
+
+
+# ---------------------------------------------------------------------------------------------
+# The schema (pydantic v2; strict types, unknown fields refused)
+# ---------------------------------------------------------------------------------------------
+def _is_number(x: Any) -> bool:
+    return isinstance(x, int | float) and not isinstance(x, bool)
+
+
+def _check_distribution(v: Any) -> Any:
+    """A distribution spec of build_population: number, [low, high], or a one-key table."""
+    allowed = (
+        "allowed: a number, [low, high], or a table {uniform|normal|lognormal|linspace = [a, b]} "
+        "or {values = [...]}"
+    )
+    if _is_number(v):
+        return v
+    if isinstance(v, list) and len(v) == 2 and all(_is_number(x) for x in v):
+        return v
+    if isinstance(v, Mapping) and len(v) == 1:
+        ((kind, args),) = v.items()
+        if kind in _DISTRIBUTIONS:
+            if isinstance(args, list) and len(args) == 2 and all(_is_number(x) for x in args):
+                return v
+            raise ValueError(f"{kind} needs a pair [a, b] of numbers, got {args!r}")
+        if kind == "values":
+            if isinstance(args, list) and all(_is_number(x) for x in args):
+                return v
+            raise ValueError(f"values needs a list of numbers, got {args!r}")
+        raise ValueError(
+            f"unknown distribution {kind!r}; allowed: {', '.join(_DISTRIBUTIONS)}, values"
+        )
+    raise ValueError(f"got {v!r}; {allowed}")
+
+
+_Dist = Annotated[Any, AfterValidator(_check_distribution)]
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True)
+
+
+class ExperimentModel(_Model):
+    """``[experiment]``: name, root seed, rounds per run, replicates per design point."""
+
+    name: str = Field(pattern=_NAME_PATTERN)
+    description: str = ""
+    seed: int = Field(ge=0)
+    rounds: int = Field(ge=1)
+    replicates: int = Field(default=1, ge=1)
+
+
+class PopulationModel(_Model):
+    """``[population]``: keyword arguments of build_population (None: its default)."""
+
+    n_buyers: int = Field(ge=0)
+    n_sellers: int = Field(ge=0)
+    value: _Dist | None = None
+    cost: _Dist | None = None
+    shade: _Dist | None = None
+    sigma: _Dist | None = None
+    activity: _Dist | None = None
+    gamma: _Dist | None = None
+    cash: _Dist | None = None
+    stock: int | None = Field(default=None, ge=0)
+    capacity: int | None = Field(default=None, ge=0)
+    curve: str | None = None
+    curve_params: dict[str, Any] | None = None
+
+
+class PluginModel(BaseModel):
+    """A plugin table: ``name`` plus the plugin's own keyword parameters."""
+
+    model_config = ConfigDict(extra="allow", strict=True)
+    name: str
+
+
+class DriftModel(BaseModel):
+    """``[drift]``: one plugin ``{name, ...}`` or a sum ``{rules = [...], eta, noise, dt}``."""
+
+    model_config = ConfigDict(extra="allow", strict=True)
+    name: str | None = None
+    rules: list[PluginModel] | None = None
+
+    @model_validator(mode="after")
+    def _one_form(self) -> DriftModel:
+        if (self.name is None) == (self.rules is None):
+            raise ValueError(
+                "give either name = ... (one rule) or rules = [...] (a sum of forces), "
+                + ("not both" if self.name is not None else "one of them is required")
+            )
+        if self.rules is not None and len(self.rules) == 0:
+            raise ValueError("rules is empty; allowed: at least one rule {name = ...}")
+        return self
+
+
+class MarketModel(_Model):
+    """``[market]``: engine options."""
+
+    replenish: bool = True
+    keep_ledger: bool | None = None
+
+
+class CollectModel(_Model):
+    """``[collect]``: what each run keeps beyond its summary."""
+
+    rounds: bool = True
+    traders_every: int = Field(default=0, ge=0)
+    ledger: bool = False
+    metrics: list[str] | None = Field(default=None, min_length=1)
+
+
+class DesignModel(_Model):
+    """``[design]``: the sweep (see :mod:`propensim.experiments.designs`)."""
+
+    kind: Literal["points", "grid", "random", "lhs", "sobol"] = "grid"
+    samples: int | None = Field(default=None, ge=1)
+    max_runs: int = Field(default=100_000, ge=1)
+    parameters: dict[str, Any] = Field(default_factory=dict)
+    points: list[dict[str, Any]] | None = None
+
+
+class ArmModel(_Model):
+    """``[[arms]]``: a comparison arm overriding dotted fields."""
+
+    name: str = Field(pattern=_NAME_PATTERN)
+    description: str = ""
+    set: dict[str, Any] = Field(default_factory=dict)
+
+
+class CompareModel(_Model):
+    """``[compare]``: paired comparison of the arms."""
+
+    baseline: str | None = None
+    metrics: list[str] | None = Field(default=None, min_length=1)
+    confidence: float = Field(default=0.95, gt=0.0, lt=1.0)
+    bootstrap: int = Field(default=2000, ge=1)
+
+
+class SpecModel(_Model):
+    """A whole spec file."""
+
+    experiment: ExperimentModel
+    population: PopulationModel
+    network: PluginModel | None = None
+    clearing: PluginModel | None = None
+    drift: DriftModel | None = None
+    market: MarketModel = Field(default_factory=MarketModel)
+    collect: CollectModel = Field(default_factory=CollectModel)
+    design: DesignModel = Field(default_factory=DesignModel)
+    arms: list[ArmModel] = Field(default_factory=list)
+    compare: CompareModel | None = None
+
+
+def _model_at(path: Sequence) -> type[BaseModel] | None:
+    """The schema model describing the table at ``path`` (for 'allowed: ...' lists)."""
+    ann: Any = SpecModel
+    for elem in path:
+        ann = _unwrap(ann)
+        if isinstance(ann, type) and issubclass(ann, BaseModel):
+            field = ann.model_fields.get(elem) if isinstance(elem, str) else None
+            if field is None:
+                return None
+            ann = field.annotation
+        elif get_origin(ann) is list and isinstance(elem, int):
+            ann = get_args(ann)[0]
+        elif get_origin(ann) is dict:
+            ann = get_args(ann)[1]
+        else:
+            return None
+    ann = _unwrap(ann)
+    return ann if isinstance(ann, type) and issubclass(ann, BaseModel) else None
+
+
+def _unwrap(ann: Any) -> Any:
+    origin = get_origin(ann)
+    if origin is Union or (origin is not None and str(origin) == "types.UnionType"):
+        args = [a for a in get_args(ann) if a is not type(None)]
+        return args[0] if args else ann
+    if origin is Annotated:
+        return get_args(ann)[0]
+    return ann
+
+
+def _data_path(loc: Sequence, data: Any) -> tuple:
+    """Keep the elements of a pydantic error location that address the data (drop union tags)."""
+    out: list = []
+    cur = data
+    for k, elem in enumerate(loc):
+        last = k == len(loc) - 1
+        if isinstance(cur, Mapping) and elem in cur:
+            out.append(elem)
+            cur = cur[elem]
+        elif isinstance(cur, list) and isinstance(elem, int) and 0 <= elem < len(cur):
+            out.append(elem)
+            cur = cur[elem]
+        elif last and isinstance(cur, Mapping) and isinstance(elem, str):
+            out.append(elem)  # a missing key
+            cur = None
+    return tuple(out)
+
+
+def _pydantic_problem(err: dict, path: tuple) -> str:
+    kind, value = err["type"], err.get("input")
+    ctx = err.get("ctx") or {}
+    if kind == "missing":
+        text = "is required"
+        if len(path) == 1:
+            text = f"section [{path[0]}] is required"
+        elif path[-1] == "name" and path[0] in PLUGIN_KINDS:
+            text += f"; allowed: {', '.join(_known(PLUGIN_KINDS[path[0]]))}"
+        return text
+    if kind == "extra_forbidden":
+        model = _model_at(path[:-1])
+        allowed = ", ".join(model.model_fields) if model else "?"
+        what = "section" if len(path) == 1 else "field"
+        return f"unknown {what} {path[-1]!r}; allowed: {allowed}"
+    if kind in ("model_type", "dict_type", "model_attributes_type"):
+        return f"must be a table, got {value!r}"
+    if kind == "list_type":
+        return f"must be a list, got {value!r}"
+    if kind in ("value_error", "assertion_error") and "error" in ctx:
+        return str(ctx["error"])
+    if kind == "literal_error":
+        return f"got {value!r}; allowed: {ctx.get('expected')}"
+    if kind == "too_short":
+        return f"must have at least {ctx.get('min_length')} item(s), got {value!r}"
+    if kind == "string_pattern_mismatch":
+        return f"got {value!r}; allowed: letters, digits, '_' and '-' (no spaces)"
+    msg = str(err.get("msg", kind))
+    msg = re.sub(r"^Input should be", "must be", msg)
+    return f"{msg}, got {value!r}"
+
+
+def _known(kind: str) -> list[str]:
+    from propensim.plugins import registry
+
+    return registry.names(kind)
+
+
+# ---------------------------------------------------------------------------------------------
+# Plain data helpers
+# ---------------------------------------------------------------------------------------------
+def _plain(obj: Any) -> Any:
+    """Deep copy into plain TOML-able data (numpy scalars -> Python, tuples -> lists)."""
+    if isinstance(obj, Mapping):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _plain(obj.tolist())
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def _representable(v: Any) -> bool:
+    """Whether a default value can be written to TOML (None and objects cannot)."""
+    if isinstance(v, bool | int | float | str):
+        return True
+    if isinstance(v, list | tuple):
+        return all(_representable(x) for x in v)
+    if isinstance(v, Mapping):
+        return all(isinstance(k, str) and _representable(x) for k, x in v.items())
+    return False
+
+
+def _split(dotted: str) -> tuple:
+    return tuple(dotted.split("."))
+
+
+def _set_in(doc: dict, path: tuple, value: Any, what: str) -> None:
+    """Set ``path`` in a nested dict/list document, creating tables on the way."""
+    cur: Any = doc
+    for k, elem in enumerate(path[:-1]):
+        if isinstance(cur, list):
+            if not elem.isdigit() or int(elem) >= len(cur):
+                raise _Problem(path, f"{what}: {format_path(path[: k + 1])} is not in the list")
+            cur = cur[int(elem)]
+            continue
+        nxt = cur.get(elem)
+        if nxt is None:
+            nxt = cur[elem] = {}
+        if not isinstance(nxt, dict | list):
+            raise _Problem(path, f"{what}: {format_path(path[: k + 1])} is not a table")
+        cur = nxt
+    last = path[-1]
+    if isinstance(cur, list):
+        if not last.isdigit() or int(last) >= len(cur):
+            raise _Problem(path, f"{what}: {format_path(path)} is not in the list")
+        cur[int(last)] = copy.deepcopy(value)
+    else:
+        cur[last] = copy.deepcopy(value)
+
+
+def _apply_sets(doc: dict, sets: Mapping[tuple, Any], what: str) -> None:
+    """Apply dotted overrides; a changed plugin ``name`` restarts that plugin's table."""
+    for section in PLUGIN_KINDS:
+        new = sets.get((section, "name"), None)
+        old = doc.get(section)
+        if new is not None and (not isinstance(old, dict) or old.get("name") != new):
+            doc[section] = {}
+    for path, value in sets.items():
+        if len(path) == 1:
+            whole = {"name": value} if isinstance(value, str) and path[0] in PLUGIN_KINDS else value
+            doc[path[0]] = copy.deepcopy(whole)
+        else:
+            _set_in(doc, path, value, what)
+
+
+# ---------------------------------------------------------------------------------------------
+# Overrides (the CLI's --set)
+# ---------------------------------------------------------------------------------------------
+def parse_override(item: str) -> tuple[tuple, Any]:
+    """Parse ``"dotted.path=value"``: the value as a TOML value, else as a plain string.
+
+    Examples
+    --------
+    >>> parse_override("population.sigma=4.0")
+    (('population', 'sigma'), 4.0)
+    >>> parse_override('clearing.name=call_auction')
+    (('clearing', 'name'), 'call_auction')
+    """
+    if "=" not in item:
+        raise SpecError(f"--set {item!r}: expected path=value, e.g. population.sigma=4.0")
+    left, _, right = item.partition("=")
+    try:
+        path = _parse_key(left.strip())
+    except (ValueError, IndexError, tomllib.TOMLDecodeError):
+        raise SpecError(f"--set {item!r}: {left.strip()!r} is not a dotted field path") from None
+    try:
+        value = tomllib.loads("v = " + right.strip())["v"]
+    except tomllib.TOMLDecodeError:
+        value = right.strip()
+    return path, value
+
+
+# ---------------------------------------------------------------------------------------------
+# Defaults and checks of one run configuration
+# ---------------------------------------------------------------------------------------------
+@functools.cache
+def _population_defaults() -> dict[str, Any]:
+    from propensim.agents.population import build_population
+
+    sig = inspect.signature(build_population)
+    return {
+        name: _plain(p.default)
+        for name, p in sig.parameters.items()
+        if name not in ("n_buyers", "n_sellers", "rng")
+        and p.default is not inspect.Parameter.empty
+        and _representable(p.default)
+    }
+
+
+def _fill_plugin(kind: str, table: Mapping[str, Any], skip: Iterable[str] = ()) -> dict[str, Any]:
+    """``name`` first, then every parameter in signature order: given, else its default."""
+    params = _parameters(kind, table["name"])
+    out: dict[str, Any] = {"name": table["name"]}
+    for key, default in params.items():
+        if key in table:
+            out[key] = table[key]
+        elif key not in skip and _representable(default):
+            out[key] = _plain(default)
+    return out
+
+
+def _parameters(kind: str, name: str) -> dict[str, Any]:
+    """The keyword parameters of a plugin with their defaults (cached per plugin class)."""
+    from propensim.plugins import registry
+
+    return _signature_defaults(registry.get_plugin(kind, name))
+
+
+@functools.cache
+def _signature_defaults(obj: Any) -> dict[str, Any]:
+    sig = inspect.signature(obj)
+    return {
+        p.name: (None if p.default is inspect.Parameter.empty else p.default)
+        for p in sig.parameters.values()
+        if p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
+    }
+
+
+@functools.cache
+def _combine_options() -> dict[str, Any]:
+    from propensim.plugins.drift import combine
+
+    sig = inspect.signature(combine)
+    return {
+        name: p.default
+        for name, p in sig.parameters.items()
+        if p.kind is inspect.Parameter.KEYWORD_ONLY
+    }
+
+
+def _param_in_message(message: str, names: Iterable[str]) -> str | None:
+    """The parameter named earliest in an error message, if any."""
+    best, best_pos = None, len(message) + 1
+    for name in names:
+        m = re.search(rf"(?<![A-Za-z0-9_]){re.escape(name)}(?![A-Za-z0-9_])", message)
+        if m and m.start() < best_pos:
+            best, best_pos = name, m.start()
+    return best
+
+
+def _check_model(model: type[BaseModel], section: str, data: Any) -> dict[str, Any]:
+    try:
+        return model.model_validate(data).model_dump(exclude_none=True)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        path = _data_path(err["loc"], data)
+        raise _Problem((section, *path), _pydantic_problem(err, (section, *path))) from None
+
+
+def _check_plugin(kind: str, section: tuple, table: Mapping[str, Any]) -> None:
+    """Build the plugin through the registry (runs its ``check()``); map failures to fields."""
+    from propensim.plugins import registry
+
+    name = table["name"]
+    try:
+        registry.get_plugin(kind, name)
+    except registry.UnknownPluginError as exc:
+        raise _Problem((*section, "name"), str(exc)) from None
+    params = {k: v for k, v in table.items() if k != "name"}
+    try:
+        registry.make_plugin(kind, name, **params)
+    except registry.UnknownPluginError as exc:
+        m = re.search(r"unknown parameter '([^']+)'", str(exc))
+        raise _Problem((*section, m.group(1)) if m else section, str(exc)) from None
+    except (ValueError, TypeError) as exc:
+        names = [*params, *_parameters(kind, name)]
+        param = _param_in_message(str(exc), names)
+        raise _Problem((*section, param) if param else section, str(exc)) from None
+
+
+def _check_population(pop: dict[str, Any]) -> None:
+    """Build a tiny copy of the population with the same parameters; map errors to fields."""
+    from propensim.agents.population import build_population
+    from propensim.plugins import registry
+
+    try:
+        registry.get_plugin("curves", pop["curve"])
+    except registry.UnknownPluginError as exc:
+        raise _Problem(("population", "curve"), str(exc)) from None
+    tiny = dict(pop)
+    per_trader = any(isinstance(v, Mapping) and "values" in v for v in pop.values())
+    if not per_trader and not pop.get("curve_params"):
+        tiny["n_buyers"] = min(pop["n_buyers"], 2)
+        tiny["n_sellers"] = min(pop["n_sellers"], 2)
+    try:
+        population = build_population(**tiny, rng=0)
+        population.curves()
+    except (ValueError, TypeError) as exc:
+        field = _param_in_message(str(exc), list(pop))
+        if field is None and _param_in_message(str(exc), list(pop.get("curve_params") or ())):
+            field = "curve_params"
+        raise _Problem(("population", field) if field else ("population",), str(exc)) from None
+
+
+def _check_drift(drift: dict[str, Any]) -> None:
+    from propensim.plugins import registry
+
+    if "rules" not in drift:
+        _check_plugin("drift", ("drift",), drift)
+        return
+    rules = []
+    for i, rule in enumerate(drift["rules"]):
+        _check_plugin("drift", ("drift", "rules", i), rule)
+        rules.append(
+            registry.make_plugin(
+                "drift", rule["name"], **{k: v for k, v in rule.items() if k != "name"}
+            )
+        )
+    options = {k: v for k, v in drift.items() if k != "rules"}
+    allowed = _combine_options()
+    extra = [k for k in options if k not in allowed]
+    if extra:
+        raise _Problem(
+            ("drift", extra[0]),
+            f"unknown option {extra[0]!r} of a sum of drift rules; allowed: rules, "
+            + ", ".join(allowed),
+        )
+    from propensim.plugins.drift import combine
+
+    try:
+        rule = combine(rules, **options)
+        check = getattr(rule, "check", None)
+        if callable(check):
+            check()
+    except (ValueError, TypeError) as exc:
+        opt = _param_in_message(str(exc), list(options) + list(allowed))
+        raise _Problem(("drift", opt) if opt else ("drift",), str(exc)) from None
+
+
+def _fill_drift(drift: dict[str, Any]) -> dict[str, Any]:
+    if "rules" not in drift:
+        return _fill_plugin("drift", drift)
+    options = _combine_options()
+    # inside a sum the integrator options belong to the sum, so rules do not repeat them
+    out: dict[str, Any] = {
+        "rules": [_fill_plugin("drift", r, skip=options) for r in drift["rules"]]
+    }
+    for key, default in options.items():
+        if key in drift:
+            out[key] = drift[key]
+        elif _representable(default):
+            out[key] = _plain(default)
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# The spec
+# ---------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class CompareOptions:
+    """How arms are compared: ``baseline`` arm, ``metrics``, CI ``confidence``, ``bootstrap``."""
+
+    baseline: str
+    metrics: list[str]
+    confidence: float
+    bootstrap: int
+
+
+class Spec:
+    """A checked experiment: the file's sections, fully defaulted, and its run plans.
+
+    Build one with :func:`load_spec`. Attributes mirror the file: ``name``, ``description``,
+    ``seed``, ``rounds``, ``replicates`` (from ``[experiment]``), and the sections
+    ``population``, ``network``, ``clearing``, ``drift``, ``market``, ``collect``, ``design``
+    (dicts), ``arms`` (list of dicts), ``compare`` (:class:`CompareOptions`, or None with fewer
+    than two arms). Also ``points`` (the design points), ``source`` (the file, or None).
+    """
+
+    def __init__(
+        self, resolved: dict[str, Any], points: list[dict[str, Any]], configs, source
+    ) -> None:
+        self._resolved = resolved
+        self.points = points
+        self._configs = configs  # {(point, arm index): config}
+        self.source: Path | None = source
+        exp = resolved["experiment"]
+        self.experiment = exp
+        self.name: str = exp["name"]
+        self.description: str = exp["description"]
+        self.seed: int = exp["seed"]
+        self.rounds: int = exp["rounds"]
+        self.replicates: int = exp["replicates"]
+        for section in ("population", "network", "clearing", "drift", "market", "collect"):
+            setattr(self, section, resolved[section])
+        self.design: dict[str, Any] = resolved["design"]
+        self.arms: list[dict[str, Any]] = resolved.get("arms", [])
+        comp = resolved.get("compare")
+        self.compare: CompareOptions | None = CompareOptions(**comp) if comp else None
+
+    def __repr__(self) -> str:
+        return (
+            f"Spec(name={self.name!r}, points={len(self.points)}, "
+            f"replicates={self.replicates}, arms={self.arm_names}, runs={self.n_runs})"
+        )
+
+    @property
+    def arm_names(self) -> list[str]:
+        """Names of the comparison arms, in file order (empty without arms)."""
+        return [a["name"] for a in self.arms]
+
+    @property
+    def metrics(self) -> list[str]:
+        """Metrics every run measures (``collect.metrics``)."""
+        return list(self.collect["metrics"])
+
+    @property
+    def n_runs(self) -> int:
+        """Number of runs: design points x replicates x arms (at least one arm)."""
+        return len(self.points) * self.replicates * max(1, len(self.arms))
+
+    def runs(self) -> list[RunPlan]:
+        """Every run, ordered by design point, then replicate, then arm.
+
+        Arms of one ``(point, replicate)`` share ``seed_key = (point, replicate)``: they see the
+        same population, network and random streams (common random numbers). The ``config`` of
+        runs at the same point and arm is one dict shared between replicates: treat it as
+        read-only.
+        """
+        collect = {k: self.collect[k] for k in ("rounds", "traders_every", "ledger")}
+        arms = self.arm_names or [""]
+        plans = []
+        for p, params in enumerate(self.points):
+            for r in range(self.replicates):
+                for a, arm in enumerate(arms):
+                    plans.append(
+                        RunPlan(
+                            index=len(plans),
+                            arm=arm,
+                            point=p,
+                            replicate=r,
+                            params=dict(params),
+                            config=self._configs[(p, a)],
+                            rounds=self.rounds,
+                            seed_entropy=self.seed,
+                            seed_key=(p, r),
+                            collect=dict(collect),
+                        )
+                    )
+        return plans
+
+    def config(self, point: int = 0, arm: str | None = None) -> dict[str, Any]:
+        """The resolved market configuration at a design point for an arm (a deep copy)."""
+        names = self.arm_names or [""]
+        a = names.index(arm if arm is not None else names[0])
+        return copy.deepcopy(self._configs[(point, a)])
+
+    def resolved(self) -> dict[str, Any]:
+        """The spec as plain data, every default filled in (writable with ``tomli_w``)."""
+        return copy.deepcopy(self._resolved)
+
+    def fingerprint(self) -> str:
+        """SHA-256 of the canonical JSON of :meth:`resolved`: changes when any setting does."""
+        return hashlib.sha256(canonical_json(self._resolved).encode()).hexdigest()
+
+    def to_toml(self) -> str:
+        """The resolved spec as TOML text (loads back to the same fingerprint)."""
+        import tomli_w
+
+        head = "# propensim experiment spec, resolved: every default written out\n"
+        return head + tomli_w.dumps(self._resolved)
+
+
+class _Builder:
+    """Checks a raw spec document and expands it (one per load_spec call)."""
+
+    def __init__(self, raw: dict, file: str | None, locator: _Locator | None, overridden) -> None:
+        self.raw = raw
+        self.file = file
+        self.locator = locator
+        self.overridden: dict[tuple, str] = overridden  # path -> the --set text
+
+    # -- errors --------------------------------------------------------------------------------
+    def error(self, path: tuple, problem: str, source: tuple | None = None, note: str = ""):
+        """A SpecError at ``path``; its line is that of ``source`` (default: ``path``)."""
+        where = tuple(source if source is not None else path)
+        line = None
+        for opath, text in self.overridden.items():
+            if where and (where[: len(opath)] == opath or opath[: len(where)] == where):
+                note = f"{note}; " if note else ""
+                note += f"from --set {text}"
+                break
+        else:
+            if self.locator is not None:
+                line = self.locator.find(where)
+        suffix = f" ({note})" if note else ""
+        return SpecError(problem + suffix, path=format_path(path), file=self.file, line=line)
+
+    # -- the whole spec ------------------------------------------------------------------------
+    def build(self) -> Spec:
+        raw = self.raw
+        try:
+            model = SpecModel.model_validate(raw)
+        except ValidationError as exc:
+            errors = exc.errors()
+            err = errors[0]
+            path = _data_path(err["loc"], raw)
+            more = len(errors) - 1
+            note = f"and {more} more problem{'s' if more > 1 else ''}" if more else ""
+            raise self.error(path, _pydantic_problem(err, path), note=note) from None
+        m = model.model_dump(exclude_none=True)
+        exp = m["experiment"]
+        collect = self._collect(m)
+        market = self._market(m, collect)
+        arms = m["arms"]
+        compare = self._compare(m, arms, collect)
+        design = self._design(m)
+        self.design_kind = design["kind"]
+        n_arms = max(1, len(arms))
+        n_pts = self._count_points(design)
+        n_runs = n_pts * exp["replicates"] * n_arms
+        if n_runs > design["max_runs"]:
+            raise self.error(
+                ("design", "max_runs"),
+                f"design too large: {n_pts} points x {exp['replicates']} replicates x {n_arms} "
+                f"arms = {n_runs} runs > max_runs = {design['max_runs']}; "
+                "allowed: shrink the design or raise design.max_runs",
+            )
+        points = self._points(design, exp["seed"])
+        base = {
+            "population": m["population"],
+            "network": m.get("network", {"name": "complete"}),
+            "clearing": m.get("clearing", {"name": "propensity"}),
+            "drift": m.get("drift", {"name": "none"}),
+            "market": market,
+        }
+        self._check_set_paths(arms, design, points)
+        self._cache: dict[str, Any] = {}
+        resolved_base = self._resolve_config(base, None, None, {})
+        configs = {}
+        for p, point in enumerate(points):
+            for a in range(n_arms):
+                arm = arms[a] if arms else None
+                cfg = self._resolve_config(base, arm, a if arms else None, point, p)
+                # sections are shared between configs (cached): build new dicts on top
+                cfg["market"] = {**cfg["market"], "traders_every": collect["traders_every"]}
+                cfg["metrics"] = list(collect["metrics"])
+                configs[(p, a)] = cfg
+        resolved = {
+            "experiment": {
+                "name": exp["name"],
+                "description": exp.get("description", ""),
+                "seed": exp["seed"],
+                "rounds": exp["rounds"],
+                "replicates": exp["replicates"],
+            },
+            **{k: resolved_base[k] for k in CONFIG_SECTIONS},
+            "collect": collect,
+            "design": design,
+        }
+        if arms:
+            resolved["arms"] = [
+                {"name": a["name"], "description": a.get("description", ""), "set": a["set"]}
+                for a in arms
+            ]
+        if compare is not None:
+            resolved["compare"] = compare
+        return Spec(_plain(resolved), points, configs, None)
+
+    # -- sections ------------------------------------------------------------------------------
+    def _collect(self, m: dict) -> dict[str, Any]:
+        from propensim.markets.engine import DEFAULT_METRICS
+        from propensim.plugins import registry
+
+        c = m["collect"]
+        metrics = list(c.get("metrics", DEFAULT_METRICS))
+        for i, name in enumerate(metrics):
+            if name in metrics[:i]:
+                raise self.error(
+                    ("collect", "metrics", i), f"{name!r} is listed twice; each metric once"
+                )
+            try:
+                registry.get_plugin("metrics", name)
+            except registry.UnknownPluginError as exc:
+                raise self.error(("collect", "metrics", i), str(exc)) from None
+        return {
+            "rounds": c["rounds"],
+            "traders_every": c["traders_every"],
+            "ledger": c["ledger"],
+            "metrics": metrics,
+        }
+
+    def _market(self, m: dict, collect: dict) -> dict[str, Any]:
+        mk = m["market"]
+        keep = mk.get("keep_ledger")
+        if keep is False and collect["ledger"]:
+            raise self.error(
+                ("market", "keep_ledger"),
+                "is false but collect.ledger = true asks for the ledger; allowed: true, "
+                "or leave it out (it follows collect.ledger)",
+            )
+        return {
+            "replenish": mk["replenish"],
+            "keep_ledger": collect["ledger"] if keep is None else keep,
+        }
+
+    def _compare(self, m: dict, arms: list, collect: dict) -> dict[str, Any] | None:
+        names = [a["name"] for a in arms]
+        for i, name in enumerate(names):
+            if name in names[:i]:
+                raise self.error(
+                    ("arms", i, "name"), f"duplicate arm name {name!r}; arm names must be unique"
+                )
+        c = m.get("compare")
+        if c is None and len(arms) < 2:
+            return None
+        if len(arms) < 2:
+            raise self.error(
+                ("compare",),
+                f"needs at least 2 [[arms]] to compare, found {len(arms)}; add arms or remove "
+                "[compare]",
+            )
+        c = c or {}
+        baseline = c.get("baseline", names[0])
+        if baseline not in names:
+            raise self.error(
+                ("compare", "baseline"),
+                f"{baseline!r} is not an arm; allowed: {', '.join(names)}",
+            )
+        metrics = list(c.get("metrics", collect["metrics"]))
+        for i, name in enumerate(metrics):
+            if name not in collect["metrics"]:
+                raise self.error(
+                    ("compare", "metrics", i),
+                    f"{name!r} is not collected; allowed: {', '.join(collect['metrics'])} "
+                    "(collect.metrics)",
+                )
+        return {
+            "baseline": baseline,
+            "metrics": metrics,
+            "confidence": c.get("confidence", 0.95),
+            "bootstrap": c.get("bootstrap", 2000),
+        }
+
+    def _design(self, m: dict) -> dict[str, Any]:
+        d = m["design"]
+        kind, params = d["kind"], d["parameters"]
+        out: dict[str, Any] = {"kind": kind, "max_runs": d["max_runs"]}
+        if kind in designs.SAMPLED_KINDS:
+            if "samples" not in d:
+                raise self.error(
+                    ("design", "samples"), f"is required for kind = {kind!r} (a whole number >= 1)"
+                )
+            out["samples"] = d["samples"]
+        elif "samples" in d:
+            raise self.error(
+                ("design", "samples"),
+                f"is not used by kind = {kind!r}; allowed with kind = random, lhs or sobol",
+            )
+        if kind == "points":
+            if params:
+                raise self.error(
+                    ("design", "parameters"),
+                    "is not used by kind = 'points'; give the values in design.points",
+                )
+            if "points" not in d:
+                raise self.error(
+                    ("design", "points"), "is required for kind = 'points' (a list of tables)"
+                )
+            if not d["points"]:
+                raise self.error(("design", "points"), "is empty; allowed: at least one point")
+            out["points"] = d["points"]
+            return out
+        if "points" in d:
+            raise self.error(("design", "points"), f"is only used by kind = 'points', not {kind!r}")
+        checked = {}
+        for name, spec in params.items():
+            try:
+                if kind == "grid":
+                    checked[name] = designs.check_levels(name, spec)
+                else:
+                    checked[name] = designs.check_range(name, spec)
+            except designs.DesignError as exc:
+                src = ("design", "parameters", name) + ((exc.key,) if exc.key else ())
+                raise self.error(("design", "parameters", name), str(exc), source=src) from None
+        out["parameters"] = checked
+        return out
+
+    def _count_points(self, design: dict) -> int:
+        if design["kind"] == "points":
+            return len(design["points"])
+        return designs.n_points(design["kind"], design["parameters"], samples=design.get("samples"))
+
+    def _points(self, design: dict, seed: int) -> list[dict[str, Any]]:
+        kind = design["kind"]
+        params = design["points"] if kind == "points" else design["parameters"]
+        ss = np.random.SeedSequence(seed, spawn_key=(DESIGN_SPAWN_KEY,))
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                points = designs.design_points(kind, params, samples=design.get("samples"), seed=ss)
+        except designs.DesignError as exc:  # pragma: no cover - checked above already
+            raise self.error(("design",), str(exc)) from None
+        for w in caught:
+            where = f"{self.file}: " if self.file else ""
+            warnings.warn(f"{where}{w.message}", w.category, stacklevel=4)
+        return _plain(points)
+
+    def _check_set_paths(self, arms: list, design: dict, points: list) -> None:
+        allowed = ", ".join(CONFIG_SECTIONS)
+
+        def check(key: str, where: tuple, value: Any) -> None:
+            parts = _split(key)
+            whole = len(parts) == 1 and (
+                isinstance(value, Mapping) or (isinstance(value, str) and key in PLUGIN_KINDS)
+            )
+            if parts[0] not in CONFIG_SECTIONS or (len(parts) < 2 and not whole) or "" in parts:
+                raise self.error(
+                    where,
+                    f"{key!r} is not a field path of the run configuration; allowed: a dotted "
+                    f"path under {allowed} (e.g. 'population.sigma')",
+                )
+
+        for i, arm in enumerate(arms):
+            for key, value in arm["set"].items():
+                check(key, ("arms", i, "set", key), value)
+        for i, point in enumerate(points):
+            for key, value in point.items():
+                src = ("design", "points", i, key) if design["kind"] == "points" else None
+                check(key, src or ("design", "parameters", key), value)
+
+    # -- one run configuration -------------------------------------------------------------------
+    def _resolve_config(
+        self, base: dict, arm: dict | None, a: int | None, point: dict, p: int | None = None
+    ) -> dict[str, Any]:
+        """Apply the arm's then the point's overrides, check every section, fill defaults."""
+        # copy only the sections an override writes into; the others stay shared with base
+        touched = {k.split(".")[0] for k in (*(arm["set"] if arm else ()), *point)}
+        cfg = {k: copy.deepcopy(v) if k in touched else v for k, v in base.items()}
+        arm_sets = {_split(k): v for k, v in (arm["set"] if arm else {}).items()}
+        point_sets = {_split(k): v for k, v in point.items()}
+
+        def fail(prob: _Problem) -> SpecError:
+            """Locate a problem at the override that caused it (the point wins: applied last)."""
+            arm_note = f"arm {arm['name']!r}" if arm is not None else ""
+            for key, value in point_sets.items():
+                n = min(len(key), len(prob.path))
+                if key[:n] == prob.path[:n]:
+                    dotted = ".".join(key)
+                    if self.design_kind == "points":
+                        src = ("design", "points", p, dotted)
+                    else:
+                        src = ("design", "parameters", dotted)
+                    note = f"design point {p}: {dotted} = {value!r}"
+                    note += f", {arm_note}" if arm_note else ""
+                    return self.error(prob.path, prob.problem, source=src, note=note)
+            for key in arm_sets:
+                n = min(len(key), len(prob.path))
+                if key[:n] == prob.path[:n]:
+                    src = ("arms", a, "set", ".".join(key))
+                    return self.error(
+                        prob.path, prob.problem, source=src, note=f"set by {arm_note}"
+                    )
+            note = arm_note
+            if p is not None and point:
+                note = f"design point {p}" + (f", {note}" if note else "")
+            return self.error(prob.path, prob.problem, note=note)
+
+        try:
+            _apply_sets(cfg, arm_sets, "arm")
+            _apply_sets(cfg, point_sets, "design")
+            out = {}
+            for section in CONFIG_SECTIONS:
+                out[section] = self._section(section, cfg.get(section))
+        except _Problem as prob:
+            raise fail(prob) from None
+        return out
+
+    def _section(self, section: str, data: Any) -> Any:
+        """Check and fill one section (cached by content: designs repeat sections)."""
+        key = section + canonical_json(data)
+        hit = self._cache.get(key)
+        if hit is None:
+            try:
+                hit = self._cache[key] = self._section_uncached(section, data)
+            except _Problem as prob:
+                hit = self._cache[key] = prob
+        if isinstance(hit, _Problem):
+            raise hit
+        return hit
+
+    def _section_uncached(self, section: str, data: Any) -> Any:
+        if section == "population":
+            pop = _check_model(PopulationModel, section, data)
+            pop = {**pop, **{k: v for k, v in _population_defaults().items() if k not in pop}}
+            order = list(PopulationModel.model_fields)
+            pop = {k: pop[k] for k in order if k in pop}
+            _check_population(pop)
+            return pop
+        if section == "market":
+            mk = _check_model(MarketModel, section, data)
+            return {
+                "replenish": mk.get("replenish", True),
+                "keep_ledger": mk.get("keep_ledger", False),
+            }
+        if section == "drift":
+            drift = _check_model(DriftModel, section, data)
+            _check_drift(drift)
+            return _fill_drift(drift)
+        table = _check_model(PluginModel, section, data)
+        _check_plugin(PLUGIN_KINDS[section], (section,), table)
+        return _fill_plugin(PLUGIN_KINDS[section], table)
+
+
+def _parse_file(path: Path) -> tuple[dict, _Locator]:
+    file = str(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SpecError("no such spec file", file=file) from None
+    except UnicodeDecodeError as exc:
+        raise SpecError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", file=file) from None
+    except OSError as exc:
+        raise SpecError(f"cannot read the spec file: {exc.strerror or exc}", file=file) from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        msg = str(exc)
+        m = re.search(r"\(at line (\d+), column (\d+)\)", msg)
+        line = int(m.group(1)) if m else None
+        if m:
+            msg = msg[: m.start()].rstrip() + f" (column {m.group(2)})"
+        elif "end of document" in msg:
+            line = text.count("\n") + (0 if text.endswith("\n") else 1)
+        raise SpecError(f"invalid TOML: {msg}", file=file, line=line) from None
+    return raw, _Locator(text)
+
+
+def _normalise(raw: dict) -> None:
+    """Shorthands: ``network = "complete"`` means ``[network] name = "complete"``."""
+    for section in PLUGIN_KINDS:
+        if isinstance(raw.get(section), str):
+            raw[section] = {"name": raw[section]}
+
+
+def load_spec(source: str | Path | Mapping[str, Any], overrides: Iterable[str] = ()) -> Spec:
+    """Read and check an experiment spec.
+
+    Parameters
+    ----------
+    source : str, Path or mapping
+        Path of a TOML spec file, or the same structure as a dict.
+    overrides : iterable of str
+        ``"dotted.path=value"`` settings applied on top (the CLI's ``--set``); the value is read as
+        a TOML value (``4.0``, ``true``, ``[1, 2]``, ``"text"``), else taken as a plain string.
+
+    Returns
+    -------
+    Spec
+
+    Raises
+    ------
+    SpecError
+        One line naming the file, line and field of the first problem found.
+
+    Examples
+    --------
+    >>> spec = load_spec(
+    ...     {
+    ...         "experiment": {"name": "tiny", "seed": 1, "rounds": 5},
+    ...         "population": {"n_buyers": 4, "n_sellers": 4},
+    ...     }
+    ... )  # doctest: +SKIP
+    >>> spec.n_runs  # doctest: +SKIP
+    1
+    """
+    file = None
+    locator = None
+    if isinstance(source, Mapping):
+        raw = _plain(source)
+    elif isinstance(source, str | Path):
+        path = Path(source)
+        raw, locator = _parse_file(path)
+        file = str(source)
+    else:
+        raise SpecError(
+            f"spec source must be a file path or a mapping, got {type(source).__name__}"
+        )
+    _normalise(raw)
+    overridden: dict[tuple, str] = {}
+    allowed = list(SpecModel.model_fields)
+    for item in overrides:
+        path, value = parse_override(item)
+        if path[0] not in allowed:
+            raise SpecError(
+                f"--set {item}: unknown section {path[0]!r}; allowed: {', '.join(allowed)}",
+                file=file,
+            )
+        try:
+            _apply_sets(raw, {path: _plain(value)}, f"--set {item}")
+        except _Problem as prob:
+            raise SpecError(prob.problem, file=file) from None
+        overridden[path] = item.strip()
+    builder = _Builder(raw, file, locator, overridden)
+    spec = builder.build()
+    spec.source = Path(source) if file is not None else None
+    return spec
