@@ -1,0 +1,336 @@
+"""Kernels of the classical clearing rules: call auction, bilateral bargaining, double auction.
+
+References
+----------
+D. K. Gode and S. Sunder, "Allocative efficiency of markets with zero-intelligence traders",
+J. Political Economy 101(1):119-137 (1993): the double auction with random (ZI) quotes.
+M. A. Satterthwaite and S. R. Williams, "The rate of convergence to efficiency in the buyer's bid
+double auction as the market becomes large", Rev. Econ. Stud. 56(4):477-498 (1989): the
+k-double-auction price rule.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from propensim.agents.population import BUYER, Population
+from propensim.plugins._greedy import greedy_accept
+from propensim.plugins.types import MarketState, Trades, TradingNetwork
+
+
+# -- quotes ---------------------------------------------------------------------------------
+def reservation_prices(pop: Population, threshold: float) -> np.ndarray:
+    """Reservation price of every trader at acceptance ``threshold``, shape (n,).
+
+    A buyer's is the highest price it accepts with probability >= threshold, a seller's the
+    lowest. For normal curves ``mu +/- sigma sqrt(2 ln(a / threshold))`` (+ for buyers); NaN where
+    the activity ``a`` is below the threshold (the trader never accepts that often).
+    """
+    if pop.curve != "normal":
+        curves = pop.curves()
+        return np.asarray(curves.reservation_price(threshold, side=pop.role), dtype=float)
+    reach = pop.activity >= threshold  # shape: (n,) curve rises to the threshold somewhere
+    ratio = np.where(reach, pop.activity / threshold, 1.0)
+    half = pop.sigma * np.sqrt(2.0 * np.log(ratio))  # shape: (n,) half-width at the threshold
+    quote = np.where(pop.role == BUYER, pop.mu + half, pop.mu - half)
+    return np.where(reach, quote, np.nan)
+
+
+def _aggregate(b: np.ndarray, s: np.ndarray, price: np.ndarray, n: int) -> Trades:
+    """Merge unit trades of the same pair at the same price into one row with a quantity."""
+    if b.size == 0:
+        return Trades.empty()
+    key = b * np.int64(n) + s
+    _, first, counts = np.unique(key, return_index=True, return_counts=True)
+    return Trades(b[first], s[first], price[first], counts)
+
+
+def _unit_copies(reps: np.ndarray):
+    """For items repeated ``reps`` times: (item id of each copy, copy number within its item)."""
+    item = np.repeat(np.arange(reps.size), reps)  # shape: (n_copies,)
+    start = np.cumsum(reps) - reps
+    return item, np.arange(item.size) - start[item]
+
+
+def _copies(reps: np.ndarray) -> np.ndarray:
+    """Item id of each unit copy, items repeated ``reps`` times side by side."""
+    if reps.size and int(reps.max()) == 1:
+        return np.arange(reps.size)
+    return np.repeat(np.arange(reps.size), reps)
+
+
+# -- call auction ---------------------------------------------------------------------------
+def call_auction(
+    state: MarketState, quote: np.ndarray, k: float, rng: np.random.Generator
+) -> tuple[Trades, int]:
+    """Uniform-price call auction in every connected component at once.
+
+    Every trader with units left and a finite quote offers each unit at its quote (a buyer with a
+    finite budget bids its j-th unit at ``min(quote, cash / j)``, so whatever it wins it can pay).
+    Demand units are sorted down and supply units up within each component (ties in random
+    order); ``q`` is the number of ranks where the bid still covers the ask; the price is
+    ``low + k (high - low)`` on the clearing interval
+    ``[max(c_q, v_{q+1}), min(v_q, c_{q+1})]``. The ``q`` best units on each side win.
+
+    Returns the trades and the number of winning units that found no connected partner.
+    """
+    pop, net = state.population, state.network
+    n = len(pop)
+    rem = state.remaining
+    comp = net.component  # shape: (n,)
+    live = (rem > 0) & (net.degree > 0) & np.isfinite(quote)  # shape: (n,)
+    rows = np.flatnonzero(live)
+    if rows.size == 0:
+        return Trades.empty(), 0
+    unit_row, unit_no = _unit_copies(rem[rows])
+    unit_row = rows[unit_row]  # shape: (n_units,) trader of each unit offered
+    unit_quote = quote[unit_row]
+    cash = pop.cash[unit_row]
+    is_buyer = pop.role[unit_row] == BUYER  # shape: (n_units,)
+    budget_cap = np.where(is_buyer & np.isfinite(cash), cash / (unit_no + 1.0), np.inf)
+    unit_quote = np.minimum(unit_quote, budget_cap)
+
+    bu, bq = unit_row[is_buyer], unit_quote[is_buyer]  # demand units
+    su, sq = unit_row[~is_buyer], unit_quote[~is_buyer]  # supply units
+    tie_b, tie_s = rng.random(bu.size), rng.random(su.size)
+    ob = np.lexsort((tie_b, -bq, comp[bu]))  # by component, bid down
+    os_ = np.lexsort((tie_s, sq, comp[su]))  # by component, ask up
+    bu, bq, su, sq = bu[ob], bq[ob], su[os_], sq[os_]
+    cb, cs = comp[bu], comp[su]  # shape: (n_demand,), (n_supply,)
+    n_comp = int(comp.max()) + 1
+    nb_c = np.bincount(cb, minlength=n_comp)  # demand units per component
+    ns_c = np.bincount(cs, minlength=n_comp)  # supply units per component
+    start_b = np.cumsum(nb_c) - nb_c
+    start_s = np.cumsum(ns_c) - ns_c
+    rank_b = np.arange(bu.size) - start_b[cb]  # shape: (n_demand,)
+    rank_s = np.arange(su.size) - start_s[cs]  # shape: (n_supply,)
+
+    facing = rank_b < ns_c[cb]  # a supply unit of the same rank exists
+    ask_same_rank = np.full(bu.size, np.inf)
+    ask_same_rank[facing] = sq[start_s[cb[facing]] + rank_b[facing]]
+    crossed = bq >= ask_same_rank  # shape: (n_demand,) prefix of each component's ranks
+    q_c = np.bincount(cb[crossed], minlength=n_comp)  # units traded per component
+    trading = np.flatnonzero(q_c > 0)
+    if trading.size == 0:
+        return Trades.empty(), 0
+    q = q_c[trading]
+    v_q = bq[start_b[trading] + q - 1]
+    c_q = sq[start_s[trading] + q - 1]
+    more_b = q < nb_c[trading]
+    more_s = q < ns_c[trading]
+    v_next = np.full(trading.size, -np.inf)
+    v_next[more_b] = bq[start_b[trading[more_b]] + q[more_b]]
+    c_next = np.full(trading.size, np.inf)
+    c_next[more_s] = sq[start_s[trading[more_s]] + q[more_s]]
+    low = np.maximum(c_q, v_next)
+    high = np.minimum(v_q, c_next)
+    comp_price = np.full(n_comp, np.nan)
+    comp_price[trading] = low + k * (high - low)
+
+    win_b = rank_b < q_c[cb]  # shape: (n_demand,)
+    win_s = rank_s < q_c[cs]  # shape: (n_supply,)
+    wb_units, ws_units = bu[win_b], su[win_s]  # both ordered by (component, rank)
+    if net.complete:
+        # Everyone is connected: pair the rank-k winners of each component directly.
+        return _aggregate(wb_units, ws_units, comp_price[comp[wb_units]], n), 0
+    won_b = np.bincount(wb_units, minlength=n)  # shape: (n,) units won per buyer
+    won_s = np.bincount(ws_units, minlength=n)  # shape: (n,) units won per seller
+    trades = pair_on_edges(net, won_b, won_s, rng)
+    trades.price = comp_price[comp[trades.buyer]]
+    return trades, int(won_b.sum() - trades.volume)
+
+
+def pair_on_edges(
+    net: TradingNetwork, units_b: np.ndarray, units_s: np.ndarray, rng: np.random.Generator
+) -> Trades:
+    """Match winning units along network edges greedily in a random edge order.
+
+    Each edge joining two traders with units to place is a candidate for
+    ``min(units_b, units_s)`` unit trades, taken edge by edge in random order
+    (:func:`greedy_accept`). Prices are left NaN for the caller to fill.
+    """
+    eligible = np.flatnonzero((units_b[net.buyer] > 0) & (units_s[net.seller] > 0))
+    if eligible.size == 0:
+        return Trades.empty()
+    eligible = eligible[rng.permutation(eligible.size)]  # random edge order
+    eb, es = net.buyer[eligible], net.seller[eligible]  # shape: (n_eligible,)
+    reps = np.minimum(units_b[eb], units_s[es])
+    edge = _copies(reps)  # unit copies, an edge's side by side
+    key = np.arange(edge.size)  # candidates are laid out in acceptance order
+    accepted = greedy_accept(key, eb[edge], es[edge], units_b, units_s)
+    qty = np.bincount(edge[accepted], minlength=eligible.size)  # units per eligible edge
+    used = qty > 0
+    return Trades(eb[used], es[used], np.full(int(used.sum()), np.nan), qty[used])
+
+
+# -- bilateral bargaining -------------------------------------------------------------------
+def bargaining(state: MarketState, quote: np.ndarray, rng: np.random.Generator) -> Trades:
+    """Neighbouring pairs whose reservation prices cross trade at the midpoint.
+
+    Edges with ``quote[buyer] >= quote[seller]`` (both finite, both with units left) are taken in
+    random order; each may trade up to ``min(units left)`` units while both sides still have units
+    (and the buyer cash for the midpoint price), via :func:`greedy_accept`.
+    """
+    pop, net = state.population, state.network
+    rem = state.remaining
+    eb, es = net.buyer, net.seller  # shape: (n_edges,)
+    qb, qs = quote[eb], quote[es]
+    with np.errstate(invalid="ignore"):
+        crossing = (qb >= qs) & (rem[eb] > 0) & (rem[es] > 0)  # shape: (n_edges,)
+    pairs = np.flatnonzero(crossing)
+    if pairs.size == 0:
+        return Trades.empty()
+    pairs = pairs[rng.permutation(pairs.size)]  # random order of the deals
+    eb, es = eb[pairs], es[pairs]
+    mid = 0.5 * (qb[pairs] + qs[pairs])  # shape: (n_pairs,) split the difference
+    reps = np.minimum(rem[eb], rem[es])
+    edge = _copies(reps)  # unit copies, a pair's side by side
+    key = np.arange(edge.size)  # candidates are laid out in acceptance order
+    budgets = bool(np.isfinite(pop.cash[eb]).any())
+    accepted = greedy_accept(
+        key,
+        eb[edge],
+        es[edge],
+        rem,
+        rem,
+        price=mid[edge] if budgets else None,
+        cash=pop.cash if budgets else None,
+    )
+    qty = np.bincount(edge[accepted], minlength=pairs.size)
+    used = qty > 0
+    return Trades(eb[used], es[used], mid[used], qty[used])
+
+
+# -- continuous double auction --------------------------------------------------------------
+def price_range(pop: Population, low: float | None, high: float | None) -> tuple[float, float]:
+    """Default quote range: from the lowest to the highest of all values and costs."""
+    lo = float(np.min(pop.value)) if low is None else float(low)
+    hi = float(np.max(pop.value)) if high is None else float(high)
+    return lo, hi
+
+
+def _curve_draws(pop: Population, who: np.ndarray, z: np.ndarray, lo: float, hi: float):
+    """Prices drawn from each arriving trader's own propensity curve, shape (n_arrivals,).
+
+    Normal family: ``mu + sigma z``. Other families: inverse-CDF sampling of the curve normalised
+    on a 257-point grid over the quote range (one-sided curves need a bounded range).
+    """
+    if pop.curve == "normal":
+        return pop.mu[who] + pop.sigma[who] * z
+    rows, inverse = np.unique(who, return_inverse=True)
+    grid = np.linspace(lo, hi, 257)
+    dens = np.asarray(pop.curves(rows).value(grid[:, None]), dtype=float).T  # (n_rows, 257)
+    cdf = np.cumsum(dens, axis=1)
+    cdf /= cdf[:, -1:]
+    from scipy.special import ndtr
+
+    u = ndtr(z)  # the same standard normals, turned into uniforms
+    cdf_w = np.concatenate([np.zeros((rows.size, 1)), cdf], axis=1)[inverse]  # (n_arr, 258)
+    cell = np.clip((cdf_w < u[:, None]).sum(axis=1), 1, grid.size)  # mass cell of each draw
+    rows_i = np.arange(u.size)
+    c0, c1 = cdf_w[rows_i, cell - 1], cdf_w[rows_i, cell]
+    frac = np.where(c1 > c0, (u - c0) / np.where(c1 > c0, c1 - c0, 1.0), 0.5)
+    step = grid[1] - grid[0]
+    price = grid[cell - 1] - 0.5 * step + frac * step  # linear within the cell around a point
+    return np.clip(price, lo, hi)
+
+
+def double_auction(
+    state: MarketState,
+    rng: np.random.Generator,
+    strategy: str,
+    quotes_per_round: int | None,
+    price_low: float | None,
+    price_high: float | None,
+) -> Trades:
+    """Continuous double auction with one standing quote per trader (see DoubleAuction)."""
+    pop, net = state.population, state.network
+    n = len(pop)
+    rem = np.array(state.remaining, dtype=np.int64, copy=True)
+    live = np.flatnonzero((rem > 0) & (net.degree > 0))  # traders who can quote at all
+    if live.size == 0:
+        return Trades.empty()
+    lo, hi = price_range(pop, price_low, price_high)
+    n_quotes = 20 * live.size if quotes_per_round is None else int(quotes_per_round)
+    if n_quotes == 0:
+        return Trades.empty()
+
+    # All random draws up front: who arrives, then one number per arrival for the quote.
+    who = live[rng.integers(0, live.size, n_quotes)]  # shape: (n_quotes,)
+    is_bid = pop.role[who] == BUYER  # shape: (n_quotes,)
+    value = pop.value[who]
+    if strategy == "curve":
+        quote = _curve_draws(pop, who, rng.standard_normal(n_quotes), lo, hi)
+    else:
+        u = rng.random(n_quotes)
+        if strategy == "zi_c":
+            # Budget-constrained: bids in [low, value], asks in [cost, high] (Gode and Sunder).
+            q_low = np.where(is_bid, np.minimum(lo, value), value)
+            q_high = np.where(is_bid, value, np.maximum(hi, value))
+        else:  # zi_u: anywhere in the range
+            q_low = np.full(n_quotes, lo)
+            q_high = np.full(n_quotes, hi)
+        quote = q_low + u * (q_high - q_low)
+
+    # Partner lists: sellers of each buyer (network CSR) and buyers of each seller.
+    b_ptr = net.buyer_ptr
+    order = np.argsort(net.seller, kind="stable")
+    s_partners = net.buyer[order]
+    s_ptr = np.concatenate([[0], np.cumsum(np.bincount(net.seller, minlength=n))])
+    comp = net.component
+    standing = np.full(n, np.nan)  # each trader's standing quote
+    posted = np.full(n, -1, dtype=np.int64)  # when it was posted
+    cleared = np.full(int(comp.max()) + 1, -1, dtype=np.int64)  # last book clearing per part
+    cash = np.array(pop.cash, dtype=float, copy=True)
+    out_b: list[int] = []
+    out_s: list[int] = []
+    out_p: list[float] = []
+
+    # The mechanism is sequential: each quote meets the book left by all earlier quotes, so the
+    # arrivals are a Python loop (lean: every random number was drawn above).
+    who_l, bid_l, quote_l = who.tolist(), is_bid.tolist(), quote.tolist()
+    for t in range(n_quotes):
+        i = who_l[t]
+        if rem[i] <= 0:
+            continue
+        c = comp[i]
+        x = quote_l[t]
+        if bid_l[t]:
+            x = min(x, cash[i])
+            partners = net.seller[b_ptr[i] : b_ptr[i + 1]]
+            valid = posted[partners] > cleared[c]
+            if valid.any():
+                asks = np.where(valid, standing[partners], np.inf)
+                j = int(np.argmin(asks))
+                if asks[j] <= x:
+                    b, s, p = i, int(partners[j]), float(asks[j])
+                    _record(out_b, out_s, out_p, rem, cash, cleared, b, s, p, c, t)
+                    continue
+        else:
+            partners = s_partners[s_ptr[i] : s_ptr[i + 1]]
+            valid = posted[partners] > cleared[c]
+            if valid.any():
+                bids = np.where(valid, standing[partners], -np.inf)
+                j = int(np.argmax(bids))
+                if bids[j] >= x:
+                    b, s, p = int(partners[j]), i, float(bids[j])
+                    _record(out_b, out_s, out_p, rem, cash, cleared, b, s, p, c, t)
+                    continue
+        if posted[i] > cleared[c] and (x <= standing[i] if bid_l[t] else x >= standing[i]):
+            continue  # a standing quote may only be improved
+        standing[i] = x
+        posted[i] = t
+    if not out_b:
+        return Trades.empty()
+    return Trades(np.array(out_b), np.array(out_s), np.array(out_p), np.ones(len(out_b)))
+
+
+def _record(out_b, out_s, out_p, rem, cash, cleared, b, s, p, c, t) -> None:
+    """Book one unit trade and clear the component's book (Gode and Sunder's rule)."""
+    out_b.append(b)
+    out_s.append(s)
+    out_p.append(p)
+    rem[b] -= 1
+    rem[s] -= 1
+    cash[b] -= p
+    cleared[c] = t
