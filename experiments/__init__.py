@@ -1,0 +1,48 @@
+"""What researchers run: spec files, designs, sweeps, the results store, comparisons, the CLI.
+
+Imports every other layer. Names load on first use, so importing it is cheap.
+
+Examples
+--------
+>>> from propensim.experiments import run_experiment, load  # doctest: +SKIP
+>>> store = run_experiment("sweep.toml", workers=4)  # doctest: +SKIP
+>>> load(store.path).runs.groupby("arm")["efficiency"].mean()  # doctest: +SKIP
+"""
+
+from importlib import import_module
+
+_NAMES = {
+    "RunPlan": "plan",
+    "canonical_json": "plan",
+    "Spec": "spec",
+    "SpecError": "spec",
+    "load_spec": "spec",
+    "design_points": "designs",
+    "RunResult": "runner",
+    "SweepStopped": "runner",
+    "BackendError": "runner",
+    "run_one": "runner",
+    "run_batch": "runner",
+    "run_plans": "runner",
+    "run_experiment": "runner",
+    "Store": "store",
+    "StoreError": "store",
+    "Results": "store",
+    "load": "store",
+    "query": "store",
+    "compare_arms": "compare",
+    "compare_folder": "compare",
+    "bootstrap_mean_ci": "compare",
+}
+
+__all__ = sorted(_NAMES)
+
+
+def __getattr__(name: str):
+    if name in _NAMES:
+        return getattr(import_module(f"{__name__}.{_NAMES[name]}"), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return __all__

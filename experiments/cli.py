@@ -1,0 +1,407 @@
+"""The ``propensim`` command line.
+
+Commands: ``run``, ``check``, ``compare``, ``query``, ``plugins``, ``demo``, ``pair``.
+Exit codes: 0 success; 1 some runs failed or the sweep stopped; 2 bad input (invalid spec, unknown
+plugin, unusable results folder, bad arguments), reported as one line ``propensim: error: ...``
+on stderr. Anything unexpected still shows its traceback.
+
+Start-up is kept fast: ``propensim --help`` imports nothing heavy, and ``propensim check`` builds
+its pilot with the array engine, which does not import Mesa or Dask.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from collections.abc import Sequence
+from pathlib import Path
+
+CAUTION = (
+    "Caution: these are model outputs, not investment or policy advice. They follow from the "
+    "assumptions that drive them: the shape of the propensity curves, the trading network, the "
+    "clearing rule, the drift, and invented data."
+)
+
+#: Errors that mean bad input (exit 2), by the module that defines them; looked up only in
+#: modules already imported, so catching them imports nothing.
+_INPUT_ERRORS = {
+    "propensim.experiments.spec": "SpecError",
+    "propensim.plugins.registry": "UnknownPluginError",
+    "propensim.experiments.store": "StoreError",
+    "propensim.experiments.runner": "BackendError",
+}
+
+
+class InputError(ValueError):
+    """Bad input found by the command line itself."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # one line, exit 2, no usage block
+        raise InputError(f"{message} (see propensim --help)")
+
+
+def _version() -> str:
+    from importlib import metadata
+
+    try:
+        return metadata.version("propensim")
+    except metadata.PackageNotFoundError:
+        return "unknown"
+
+
+def _one_line(text) -> str:
+    return " ".join(str(text).split())
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser (exposed for documentation tools)."""
+    p = _Parser(
+        prog="propensim",
+        description="Agent-based markets of traders described by propensity curves: "
+        "run seeded sweeps, compare clearing rules, query the results.",
+    )
+    p.add_argument("--version", action="version", version=f"propensim {_version()}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    def add_set(q):
+        q.add_argument(
+            "--set",
+            dest="overrides",
+            action="append",
+            default=[],
+            metavar="PATH=VALUE",
+            help="change a spec field, e.g. --set population.sigma=4 (repeatable)",
+        )
+
+    q = sub.add_parser("run", help="run every run of a spec into a results folder")
+    q.add_argument("spec", help="spec file (TOML)")
+    q.add_argument("--out", help="results folder (default ./results/<experiment name>)")
+    add_set(q)
+    q.add_argument("--workers", type=_positive_int, help="local worker processes (default: CPUs)")
+    g = q.add_mutually_exclusive_group()
+    g.add_argument("--scheduler", metavar="ADDR", help="run on a Dask scheduler (tcp://host:port)")
+    g.add_argument(
+        "--dask-local",
+        type=_positive_int,
+        metavar="N",
+        help="run on a local Dask cluster of N worker processes",
+    )
+    q.add_argument("--fail-fast", action="store_true", help="stop at the first failed run")
+    q.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    q = sub.add_parser("check", help="validate a spec, count its runs and estimate the time")
+    q.add_argument("spec", help="spec file (TOML)")
+    add_set(q)
+    q.add_argument("--workers", type=_positive_int, help="workers to estimate for (default: CPUs)")
+
+    q = sub.add_parser("compare", help="paired comparison of the arms in a results folder")
+    q.add_argument("folder", help="results folder")
+    q.add_argument("--metric", action="append", default=[], help="metric (repeatable)")
+    q.add_argument("--baseline", help="arm to compare against (default: the spec's)")
+    q.add_argument("--by-point", action="store_true", help="also one row per design point")
+    q.add_argument("--csv", help="CSV file to write (default FOLDER/comparison.csv)")
+
+    q = sub.add_parser("query", help="run SQL (DuckDB) over a results folder")
+    q.add_argument("folder", help="results folder")
+    q.add_argument("sql", help='e.g. "SELECT arm, avg(efficiency) FROM runs GROUP BY arm"')
+
+    sub.add_parser("plugins", help="list every registered plugin by kind")
+
+    q = sub.add_parser("demo", help="run the shipped demo experiment (growers and kitchens)")
+    q.add_argument("--out", help="results folder (default ./results/<demo name>)")
+    q.add_argument("--workers", type=_positive_int, help="local worker processes (default: CPUs)")
+    q.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    q = sub.add_parser("pair", help="one buyer meets one seller: the worked example as a table")
+    for name, default in (
+        ("buyer-mu", 95.0),
+        ("buyer-sigma", 6.0),
+        ("seller-mu", 105.0),
+        ("seller-sigma", 8.0),
+        ("gamma", 1.0),
+    ):
+        q.add_argument(f"--{name}", type=float, default=default, help=f"(default {default})")
+    q.add_argument("--levels", type=int, default=3, help="oscillator levels to show (default 3)")
+    return p
+
+
+# -- commands ------------------------------------------------------------------------------
+def _print_warnings(caught) -> None:
+    for msg in dict.fromkeys(_one_line(w.message) for w in caught):
+        print(f"propensim: warning: {msg}", file=sys.stderr)
+
+
+def _sweep(spec, out, *, workers, scheduler=None, dask_local=None, fail_fast=False, quiet=False):
+    import warnings
+
+    from propensim.experiments.runner import SweepStopped, run_experiment
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            store = run_experiment(
+                spec,
+                out,
+                workers=workers,
+                scheduler=scheduler,
+                dask_local=dask_local,
+                fail_fast=fail_fast,
+                progress=False if quiet else None,
+            )
+        except SweepStopped as exc:
+            _print_warnings(caught)
+            print(f"propensim: error: {_one_line(exc)}", file=sys.stderr)
+            return None, 1
+    _print_warnings(caught)
+    counts = store.counts()
+    if store.comparison is not None:
+        from propensim.experiments.compare import format_table
+
+        print(format_table(store.comparison))
+        print()
+    line = f"{counts['runs']} runs: {counts['ok']} ok, {counts['failed']} failed"
+    if counts["failed"]:
+        line += f" (errors in {store.path / 'failures.parquet'})"
+    print(line)
+    print(f"results: {store.path}")
+    return store, 1 if counts["failed"] else 0
+
+
+def cmd_run(args) -> int:
+    """``propensim run``."""
+    from propensim.experiments.spec import load_spec
+
+    spec = load_spec(args.spec, args.overrides)
+    _, code = _sweep(
+        spec,
+        args.out,
+        workers=args.workers,
+        scheduler=args.scheduler,
+        dask_local=args.dask_local,
+        fail_fast=args.fail_fast,
+        quiet=args.quiet,
+    )
+    return code
+
+
+def pilot_seconds(plans, budget: float = 0.05) -> tuple[float, int]:
+    """Estimate the wall-clock seconds of one run from short pilots of the first plan per arm.
+
+    The first market is built twice (the first build pays one-time imports); each pilot runs one
+    warm-up round, then times rounds until its share of ``budget`` seconds or the plan's rounds
+    are used up; the estimate is build time + rounds x time per round. Uses the array engine
+    (no Mesa import). Worker start-up (a few seconds per process) is not included.
+
+    Returns
+    -------
+    (float, int)
+        Mean estimated seconds per run over the pilots, and rounds timed.
+    """
+    import warnings
+
+    from propensim.experiments.runner import _market_config
+    from propensim.markets.engine import build_market
+
+    firsts = list({p.arm: p for p in reversed(plans)}.values())[::-1][:8]
+    estimates, timed_total = [], 0
+    for i, plan in enumerate(firsts):
+        config = _market_config(plan)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            if i == 0:
+                build_market(config, plan.seed, mesa=False)
+            t0 = time.perf_counter()
+            market = build_market(config, plan.seed, mesa=False)
+            build = time.perf_counter() - t0
+        if plan.rounds == 0:
+            estimates.append(build)
+            continue
+        market.step()
+        timed, t0 = 0, time.perf_counter()
+        while timed < plan.rounds - 1 and time.perf_counter() - t0 < budget / len(firsts):
+            market.step()
+            timed += 1
+        per_round = (time.perf_counter() - t0) / timed if timed else 0.0
+        timed_total += timed
+        estimates.append(build + plan.rounds * per_round)
+    return (sum(estimates) / len(estimates) if estimates else 0.0), timed_total
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s" if seconds >= 10 else f"{seconds:.1f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def cmd_check(args) -> int:
+    """``propensim check``."""
+    import warnings
+
+    from propensim.experiments.runner import available_cpus
+    from propensim.experiments.spec import load_spec
+
+    spec = load_spec(args.spec, args.overrides)
+    plans = spec.runs()
+    distinct = len({p.run_id for p in plans})
+    arms = list(spec.arm_names)
+    print(
+        f"{spec.name}: spec is valid; {spec.n_runs} runs"
+        + (f" ({distinct} distinct)" if distinct != spec.n_runs else "")
+        + (f", arms: {', '.join(arms)}" if len(arms) > 1 else "")
+    )
+    if not plans:
+        return 0
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            per_run, _ = pilot_seconds(plans)
+        except Exception as exc:  # the pilot is a real run: its failure is the spec's problem
+            raise InputError(f"pilot run failed: {type(exc).__name__}: {_one_line(exc)}") from None
+    _print_warnings(caught)
+    workers = args.workers or available_cpus()
+    total = per_run * distinct / min(workers, distinct)
+    print(
+        f"estimated time: about {_duration(total)} on {min(workers, distinct)} worker(s) "
+        f"(~{per_run * 1000:.0f} ms per run, from a short pilot)"
+        + (", plus a few seconds to start the worker processes" if workers > 1 else "")
+    )
+    return 0
+
+
+def cmd_compare(args) -> int:
+    """``propensim compare``."""
+    from propensim.experiments.compare import compare_folder, format_table
+    from propensim.experiments.store import StoreError, atomic_write_bytes
+
+    try:
+        table = compare_folder(
+            args.folder, args.metric or None, args.baseline, by_point=args.by_point
+        )
+    except StoreError:
+        raise
+    except ValueError as exc:  # bad metric, baseline or folder content: the user's input
+        raise InputError(_one_line(exc)) from None
+    print(format_table(table))
+    target = Path(args.csv) if args.csv else Path(args.folder) / "comparison.csv"
+    atomic_write_bytes(target, table.to_csv(index=False).encode())
+    print(f"written: {target}")
+    return 0
+
+
+def cmd_query(args) -> int:
+    """``propensim query``."""
+    import pandas as pd
+
+    from propensim.experiments.store import query
+
+    frame = query(args.folder, args.sql)
+    with pd.option_context("display.max_columns", None, "display.width", 200):
+        print(frame.to_string(index=False))
+    return 0
+
+
+def cmd_plugins(args) -> int:
+    """``propensim plugins``."""
+    from propensim.plugins.registry import describe
+
+    rows = describe()
+    width = max((len(n) for _, n, _ in rows), default=0)
+    kind = None
+    for k, name, text in rows:
+        if k != kind:
+            print(("" if kind is None else "\n") + f"{k}:")
+            kind = k
+        print(f"  {name:<{width}}  {text}")
+    return 0
+
+
+def demo_spec_path() -> Path:
+    """The shipped demo spec (package data)."""
+    from importlib import resources
+
+    return Path(str(resources.files("propensim.experiments") / "examples" / "demo.toml"))
+
+
+def cmd_demo(args) -> int:
+    """``propensim demo``."""
+    from propensim.experiments.spec import load_spec
+
+    spec = load_spec(demo_spec_path())
+    print(f"demo: {spec.name}: {spec.n_runs} runs", file=sys.stderr)
+    store, code = _sweep(spec, args.out, workers=args.workers, quiet=args.quiet)
+    print(CAUTION)
+    return code
+
+
+def cmd_pair(args) -> int:
+    """``propensim pair``."""
+    from propensim.experiments.pair import PairExample, pair_table
+
+    ex = PairExample(
+        buyer_mu=args.buyer_mu,
+        buyer_sigma=args.buyer_sigma,
+        seller_mu=args.seller_mu,
+        seller_sigma=args.seller_sigma,
+        gamma=args.gamma,
+        levels=args.levels,
+    )
+    print(pair_table(ex))
+    return 0
+
+
+COMMANDS = {
+    "run": cmd_run,
+    "check": cmd_check,
+    "compare": cmd_compare,
+    "query": cmd_query,
+    "plugins": cmd_plugins,
+    "demo": cmd_demo,
+    "pair": cmd_pair,
+}
+
+
+def _input_errors() -> tuple[type[BaseException], ...]:
+    found: list[type[BaseException]] = [InputError]
+    for module, name in _INPUT_ERRORS.items():
+        if module in sys.modules:
+            found.append(getattr(sys.modules[module], name))
+    return tuple(found)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit code (0 ok, 1 runs failed, 2 bad input)."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+        if args.command is None:
+            parser.print_help()
+            return 0
+        return COMMANDS[args.command](args)
+    except SystemExit as exc:  # --help, --version
+        return exc.code if isinstance(exc.code, int) else 0
+    except KeyboardInterrupt:
+        print("propensim: interrupted; run again to resume", file=sys.stderr)
+        return 130
+    except Exception as exc:
+        if isinstance(exc, _input_errors()):
+            print(f"propensim: error: {_one_line(exc)}", file=sys.stderr)
+            return 2
+        raise
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

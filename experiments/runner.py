@@ -1,0 +1,743 @@
+"""Running sweeps: one run, batches of runs, and the backends that execute them.
+
+A run is a pure function of its :class:`~propensim.experiments.plan.RunPlan` (configuration,
+rounds, seed), so it gives the same numbers in this process, in a local process pool or on a Dask
+worker; the runner only decides where runs execute and stores what comes back.
+
+Backends
+--------
+- ``workers=1``: runs execute in this process, one after another.
+- ``workers=N`` (default: the CPUs this process may use): a
+  :class:`concurrent.futures.ProcessPoolExecutor` with the ``"spawn"`` start method (safe with
+  threads and on every OS; the global start method is left alone). Worker processes start with
+  ``OMP_NUM_THREADS``, ``OPENBLAS_NUM_THREADS`` and ``MKL_NUM_THREADS`` set to 1, so N workers use
+  N cores and not N times the BLAS pool. A script that starts a pool must guard its entry point
+  with ``if __name__ == "__main__":`` (spawned workers import the main module).
+- ``scheduler="tcp://host:8786"``: a running Dask scheduler (``distributed.Client(address)``).
+  ``dask_local=N`` starts a ``distributed.LocalCluster`` of N single-threaded worker processes.
+  Every worker needs the same propensim (and plugins) installed.
+
+On a batch system, start workers with dask-jobqueue and hand its scheduler to the runner::
+
+    from dask_jobqueue import SLURMCluster
+    cluster = SLURMCluster(cores=1, processes=1, memory="2GB", walltime="02:00:00")
+    cluster.scale(jobs=32)                     # 32 single-core workers
+    run_experiment("sweep.toml", scheduler=cluster.scheduler_address)
+
+or from the shell, ``propensim run sweep.toml --scheduler tcp://HOST:8786`` against a scheduler
+started with ``dask scheduler`` and workers started by the batch system (``dask worker HOST:8786
+--nthreads 1``).
+
+Batching. Sending one task costs about 3.5 ms on Dask here and a little less in a process pool, so
+runs travel in batches of at least about 100 ms of work. The cost per run is estimated from the
+first runs to finish (the first tasks hold one run each: a pilot), and batches shrink near the end
+of a sweep so that the last tasks spread over all workers.
+
+Failures. A run that raises is recorded with its error type, message and traceback, and the sweep
+goes on. ``fail_fast=True`` stops at the first failure. If the first five runs to finish all failed
+with the same exception type the sweep stops: the spec is probably wrong.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import math
+import os
+import socket
+import sys
+import time
+import traceback as _traceback
+import warnings
+from collections import deque
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from propensim.experiments.plan import RunPlan
+from propensim.experiments.store import Store, plans_fingerprint
+
+#: Aim for tasks of at least this much work (seconds): amortises ~3.5 ms of task overhead.
+TARGET_TASK_SECONDS = 0.1
+#: Stop the sweep if this many first finished runs all failed with one exception type.
+EARLY_FAILURES = 5
+#: Environment variables that pin BLAS/OpenMP pools of worker processes to one thread.
+THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+class SweepStopped(RuntimeError):
+    """A sweep stopped early (fail-fast, repeated failures, a dead worker).
+
+    Results so far are stored; ``store`` is the results folder.
+    """
+
+    def __init__(self, message: str, store: Store | None = None) -> None:
+        super().__init__(message)
+        self.store = store
+
+
+class BackendError(ValueError):
+    """A backend that cannot be used as asked (bad worker count, unreachable scheduler)."""
+
+
+# -- one run -------------------------------------------------------------------------------
+@dataclass
+class RunResult:
+    """What one run returns.
+
+    Attributes
+    ----------
+    run_id, index : str, int
+        The plan's identity.
+    status : str
+        ``"ok"`` or ``"failed"``.
+    summary : dict of str to float
+        One number per metric (empty when failed).
+    rounds, traders, ledger : pandas.DataFrame or None
+        Round table, sampled trader states and trades, when the plan collects them.
+    error_type, error_message, traceback : str or None
+        For a failed run: the exception's class name, its message, the formatted traceback.
+    duration : float
+        Wall-clock seconds, building the market included.
+    worker : str
+        ``host:pid`` of the process that ran it.
+    finished : str
+        UTC time the run ended (ISO 8601).
+    warnings : tuple of str
+        Distinct warning messages the run raised.
+    """
+
+    run_id: str
+    index: int
+    status: str
+    summary: dict[str, float] = field(default_factory=dict)
+    rounds: Any = None
+    traders: Any = None
+    ledger: Any = None
+    error_type: str | None = None
+    error_message: str | None = None
+    traceback: str | None = None
+    duration: float = 0.0
+    worker: str = ""
+    finished: str = ""
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def ok(self) -> bool:
+        """True if the run finished without an error."""
+        return self.status == "ok"
+
+
+def _market_config(plan: RunPlan) -> dict[str, Any]:
+    """The plan's configuration with what ``collect`` asks for turned into market options."""
+    config = dict(plan.config)
+    market = dict(config.get("market") or {})
+    collect = plan.collect or {}
+    market["traders_every"] = int(collect.get("traders_every", 0) or 0)
+    # What is kept is decided by [collect]: the ledger costs memory and nothing reads it otherwise.
+    market["keep_ledger"] = bool(collect.get("ledger", False))
+    config["market"] = market
+    return config
+
+
+def _worker_name() -> str:
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def _utc_now() -> str:
+    return _dt.datetime.now(_dt.UTC).isoformat(timespec="milliseconds")
+
+
+def run_one(plan: RunPlan) -> RunResult:
+    """Run one plan and return its result; never raises for a failing run.
+
+    Builds the market with :func:`propensim.markets.build_market` (``mesa=False``: the array
+    engine, unless a per-agent rule needs Mesa agents), runs ``plan.rounds`` rounds and keeps the
+    summary, plus the round table, trader samples and ledger if ``plan.collect`` asks for them.
+
+    Parameters
+    ----------
+    plan : RunPlan
+        The run: configuration, rounds, seed and what to collect.
+
+    Returns
+    -------
+    RunResult
+        ``status`` ``"ok"``, or ``"failed"`` with the error type, message and traceback.
+    """
+    from propensim.markets.engine import build_market
+
+    t0 = time.perf_counter()
+    collect = plan.collect or {}
+    result = RunResult(run_id=plan.run_id, index=int(plan.index), status="ok")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            market = build_market(_market_config(plan), plan.seed, mesa=False)
+            table = market.run(int(plan.rounds))
+            result.summary = {k: float(v) for k, v in market.summary().items()}
+            if collect.get("rounds", True):
+                result.rounds = table
+            if int(collect.get("traders_every", 0) or 0) > 0:
+                result.traders = market.traders_frame()
+            if collect.get("ledger", False):
+                result.ledger = market.ledger_frame()
+        except Exception as exc:  # a failing run is a result, not a crash of the sweep
+            result.status = "failed"
+            result.summary = {}
+            result.rounds = result.traders = result.ledger = None
+            result.error_type = type(exc).__name__
+            result.error_message = str(exc)
+            result.traceback = _traceback.format_exc()
+    result.warnings = tuple(dict.fromkeys(f"{w.category.__name__}: {w.message}" for w in caught))
+    result.duration = time.perf_counter() - t0
+    result.worker = _worker_name()
+    result.finished = _utc_now()
+    return result
+
+
+def run_batch(plans: Sequence[RunPlan]) -> list[RunResult]:
+    """Run several plans one after another (the unit of work sent to a worker)."""
+    return [run_one(p) for p in plans]
+
+
+# -- backends ------------------------------------------------------------------------------
+@contextlib.contextmanager
+def pinned_threads() -> Iterator[None]:
+    """Set the BLAS/OpenMP thread variables to 1 in this process's environment, then restore.
+
+    Child processes started inside the block inherit them before they import numpy; an
+    initializer in the child would be too late, since unpickling the task imports numpy first.
+    """
+    saved = {k: os.environ.get(k) for k in THREAD_VARIABLES}
+    os.environ.update({k: "1" for k in THREAD_VARIABLES})
+    try:
+        yield
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+class _InProcess:
+    kind = "in-process"
+    n_workers = 1
+
+    def submit(self, batch):
+        from concurrent.futures import Future
+
+        fut: Future = Future()
+        try:
+            fut.set_result(run_batch(batch))
+        except BaseException as exc:  # noqa: BLE001 - delivered through the future
+            if isinstance(exc, KeyboardInterrupt):
+                raise
+            fut.set_exception(exc)
+        return fut
+
+    def wait_any(self, futures):
+        return list(futures)
+
+    def close(self, cancel: bool = False) -> None:
+        pass
+
+    def describe(self) -> dict[str, Any]:
+        return {"kind": self.kind, "workers": 1}
+
+
+class _LocalPool:
+    kind = "local"
+
+    def __init__(self, n_workers: int) -> None:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        self.n_workers = n_workers
+        # Workers start on demand while tasks are submitted, so the variables stay set for the
+        # pool's lifetime and are restored in close().
+        self._env = pinned_threads()
+        self._env.__enter__()
+        try:
+            self._pool = ProcessPoolExecutor(
+                max_workers=n_workers, mp_context=multiprocessing.get_context("spawn")
+            )
+        except BaseException:
+            self._env.__exit__(None, None, None)
+            raise
+
+    def submit(self, batch):
+        return self._pool.submit(run_batch, batch)
+
+    def wait_any(self, futures):
+        from concurrent.futures import FIRST_COMPLETED, wait
+
+        return list(wait(futures, return_when=FIRST_COMPLETED).done)
+
+    def close(self, cancel: bool = False) -> None:
+        try:
+            self._pool.shutdown(wait=True, cancel_futures=cancel)
+        finally:
+            self._env.__exit__(None, None, None)
+
+    def describe(self) -> dict[str, Any]:
+        return {"kind": self.kind, "workers": self.n_workers, "start_method": "spawn"}
+
+
+class _Dask:
+    kind = "dask"
+
+    def __init__(self, scheduler: str | None = None, local: int | None = None) -> None:
+        try:
+            import distributed
+        except ImportError:
+            raise BackendError(
+                "the Dask backend needs dask.distributed: pip install 'propensim[dask]'"
+            ) from None
+        self._cluster = None
+        self.scheduler = scheduler
+        try:
+            if local is not None:
+                with pinned_threads():
+                    self._cluster = distributed.LocalCluster(
+                        n_workers=int(local),
+                        threads_per_worker=1,
+                        processes=True,
+                        dashboard_address=None,
+                    )
+                self._client = distributed.Client(self._cluster)
+            else:
+                self._client = distributed.Client(scheduler)
+        except (OSError, TimeoutError) as exc:
+            if self._cluster is not None:
+                self._cluster.close()
+            raise BackendError(
+                f"cannot reach the Dask scheduler at {scheduler!r}: {type(exc).__name__}: "
+                f"{' '.join(str(exc).split())}"
+            ) from None
+        self.n_workers = max(1, sum(self._client.nthreads().values()))
+
+    def submit(self, batch):
+        return self._client.submit(run_batch, list(batch), pure=False)
+
+    def wait_any(self, futures):
+        import distributed
+
+        return list(distributed.wait(futures, return_when="FIRST_COMPLETED").done)
+
+    def close(self, cancel: bool = False) -> None:
+        try:
+            self._client.close()
+        finally:
+            if self._cluster is not None:
+                self._cluster.close()
+
+    def describe(self) -> dict[str, Any]:
+        kind = "dask-local" if self._cluster is not None else "dask"
+        return {"kind": kind, "workers": self.n_workers, "scheduler": self.scheduler}
+
+
+def available_cpus() -> int:
+    """CPUs this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+def _check_backend(workers, scheduler, dask_local) -> None:
+    def whole(x) -> bool:
+        return isinstance(x, int) and not isinstance(x, bool) and x >= 1
+
+    if scheduler is not None and dask_local is not None:
+        raise BackendError("give either scheduler or dask_local, not both")
+    if dask_local is not None and not whole(dask_local):
+        raise BackendError(f"dask_local must be a whole number >= 1, got {dask_local!r}")
+    if workers is not None and not whole(workers):
+        raise BackendError(f"workers must be a whole number >= 1, got {workers!r}")
+
+
+def _backend(workers, scheduler, dask_local, n_tasks: int):
+    _check_backend(workers, scheduler, dask_local)
+    if scheduler is not None:
+        return _Dask(scheduler=str(scheduler))
+    if dask_local is not None:
+        return _Dask(local=int(dask_local))
+    workers = min(workers or available_cpus(), max(n_tasks, 1))
+    return _InProcess() if workers == 1 else _LocalPool(workers)
+
+
+# -- the sweep loop ------------------------------------------------------------------------
+class _Batcher:
+    """Batch sizes from the observed cost per run (median of the runs seen so far)."""
+
+    def __init__(self, n_workers: int, inline: bool) -> None:
+        self.n_workers = n_workers
+        self.inline = inline
+        self.durations: deque[float] = deque(maxlen=256)
+
+    def observe(self, results: Sequence[RunResult]) -> None:
+        self.durations.extend(r.duration for r in results)
+
+    def size(self, remaining: int) -> int:
+        if self.inline or not self.durations:
+            return 1  # in-process there is no task overhead; elsewhere the first tasks are pilots
+        cost = max(sorted(self.durations)[len(self.durations) // 2], 1e-6)
+        wanted = math.ceil(TARGET_TASK_SECONDS / cost)
+        # Leave at least two tasks per worker for the rest of the sweep, so the end is balanced.
+        balance = max(1, math.ceil(remaining / (2 * self.n_workers)))
+        return max(1, min(wanted, balance, 10_000))
+
+
+class _Progress:
+    """A rich progress bar on stderr (ETA, done and failed counts), or nothing."""
+
+    def __init__(self, enabled: bool, total: int, label: str) -> None:
+        self._bar = None
+        self.failed = 0
+        if not enabled:
+            return
+        from rich.console import Console
+        from rich.progress import (
+            BarColumn,
+            MofNCompleteColumn,
+            Progress,
+            TextColumn,
+            TimeElapsedColumn,
+            TimeRemainingColumn,
+        )
+
+        self._bar = Progress(
+            TextColumn("[bold]{task.description}"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            TextColumn("failed {task.fields[failed]}"),
+            TimeElapsedColumn(),
+            TextColumn("ETA"),
+            TimeRemainingColumn(),
+            console=Console(stderr=True),
+        )
+        self._task = self._bar.add_task(label, total=total, failed=0)
+        self._bar.start()
+
+    def advance(self, n: int, failed: int) -> None:
+        self.failed += failed
+        if self._bar is not None:
+            self._bar.update(self._task, advance=n, failed=self.failed)
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.stop()
+
+
+def show_progress() -> bool:
+    """Default for the progress bar: only when stderr is a terminal and ``CI`` is not set."""
+    return bool(getattr(sys.stderr, "isatty", lambda: False)()) and not os.environ.get("CI")
+
+
+def _first_line(text: str | None) -> str:
+    lines = str(text or "").strip().splitlines()
+    return lines[0] if lines else ""
+
+
+def _sweep(
+    backend, todo: list[RunPlan], store: Store, *, fail_fast, progress, flush_interval
+) -> None:
+    queue = deque(todo)
+    inflight: dict[Any, list[RunPlan]] = {}
+    batcher = _Batcher(backend.n_workers, inline=isinstance(backend, _InProcess))
+    max_inflight = 1 if isinstance(backend, _InProcess) else 2 * backend.n_workers
+    early: list[RunResult] = []
+    last_flush = time.monotonic()
+    warmed = False
+    while queue or inflight:
+        while queue and len(inflight) < max_inflight:
+            n = batcher.size(len(queue))
+            batch = [queue.popleft() for _ in range(min(n, len(queue)))]
+            inflight[backend.submit(batch)] = batch
+        if not warmed:  # import what flushing needs while the first tasks run, not after
+            import pandas  # noqa: F401
+            import pyarrow.parquet  # noqa: F401
+
+            warmed = True
+        for fut in backend.wait_any(list(inflight)):
+            batch = inflight.pop(fut)
+            try:
+                results = fut.result()
+            except Exception as exc:  # the task itself failed: a worker died, cannot unpickle
+                results = [_task_failure(plan, exc) for plan in batch]
+                if type(exc).__name__ == "BrokenProcessPool":
+                    for r in results:
+                        store.add(r)
+                    store.flush()
+                    raise SweepStopped(
+                        "a worker process died (out of memory?); completed runs are stored: "
+                        f"run again into {store.path} to resume",
+                        store,
+                    ) from None
+            batcher.observe(results)
+            n_rows = n_failed = 0
+            for r in results:
+                rows = store.add(r)
+                n_rows += rows
+                n_failed += 0 if r.ok else rows
+            progress.advance(n_rows, n_failed)
+            for r in results:
+                if len(early) < EARLY_FAILURES:
+                    early.append(r)
+            first_failure = next((r for r in results if not r.ok), None)
+            if fail_fast and first_failure is not None:
+                store.flush()
+                raise SweepStopped(
+                    f"run {first_failure.index} failed ({first_failure.error_type}: "
+                    f"{_first_line(first_failure.error_message)}); stopped (fail-fast); "
+                    f"tracebacks in {store.path / 'failures.parquet'}",
+                    store,
+                )
+            if (
+                len(early) == EARLY_FAILURES
+                and all(not r.ok for r in early)
+                and len({r.error_type for r in early}) == 1
+            ):
+                store.flush()
+                raise SweepStopped(
+                    f"the first {EARLY_FAILURES} runs all failed with {early[0].error_type} "
+                    f"({_first_line(early[0].error_message)}); the spec is probably wrong; "
+                    f"tracebacks in {store.path / 'failures.parquet'}",
+                    store,
+                )
+        # Rewriting runs.parquet costs more as it grows: never spend over ~1/6 of the time on it
+        # (flush_interval=0 commits after every task, for tests).
+        interval = max(flush_interval, 5 * store.last_flush_seconds) if flush_interval else 0.0
+        if time.monotonic() - last_flush >= interval:
+            store.flush()
+            last_flush = time.monotonic()
+    store.flush()
+
+
+def _task_failure(plan: RunPlan, exc: BaseException) -> RunResult:
+    return RunResult(
+        run_id=plan.run_id,
+        index=int(plan.index),
+        status="failed",
+        error_type=type(exc).__name__,
+        error_message=str(exc),
+        traceback="".join(_traceback.format_exception(exc)),
+        worker="",
+        finished=_utc_now(),
+    )
+
+
+def _metric_names(plans: Sequence[RunPlan]) -> list[str]:
+    from propensim.markets.engine import DEFAULT_METRICS
+
+    names: list[str] = []
+    for plan in plans:
+        listed = plan.config.get("metrics")
+        for m in DEFAULT_METRICS if listed is None else listed:
+            name = m.get("name") if isinstance(m, Mapping) else m
+            if isinstance(name, str) and name not in names:
+                names.append(name)
+    return names
+
+
+def run_plans(
+    plans: Sequence[RunPlan],
+    out,
+    *,
+    name: str = "experiment",
+    metrics: Sequence[str] | None = None,
+    fingerprint: str | None = None,
+    spec: dict[str, Any] | None = None,
+    spec_toml: str | None = None,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    dask_local: int | None = None,
+    fail_fast: bool = False,
+    progress: bool | None = None,
+    flush_interval: float = 1.0,
+    command: Sequence[str] | None = None,
+) -> Store:
+    """Run plans into a results folder, resuming what is already stored there.
+
+    The lower-level form of :func:`run_experiment`, for plans built without a spec file.
+    Runs already stored ``ok`` in ``out`` are skipped; failed ones are tried again. Plans with
+    the same ``run_id`` are computed once.
+
+    Parameters
+    ----------
+    plans : sequence of RunPlan
+        Unique ``index`` values.
+    out : str or Path
+        Results folder (created if missing).
+    name, metrics, fingerprint, spec, spec_toml
+        Recorded in the manifest; ``metrics`` defaults to those the plans configure and
+        ``fingerprint`` to a hash of the plans.
+    workers, scheduler, dask_local, fail_fast, progress
+        See :func:`run_experiment`.
+    flush_interval : float
+        Seconds between commits to the folder (at most this much work is lost to a crash).
+
+    Returns
+    -------
+    Store
+
+    Raises
+    ------
+    SweepStopped
+        After fail-fast, repeated identical failures, or a dead worker; results so far are stored.
+    StoreError
+        If ``out`` holds another experiment or unreadable files.
+    """
+    plans = sorted(plans, key=lambda p: p.index)
+    indices = [p.index for p in plans]
+    if len(set(indices)) != len(indices):
+        raise ValueError("plans must have distinct index values")
+    _check_backend(workers, scheduler, dask_local)
+    metrics = list(metrics) if metrics is not None else _metric_names(plans)
+    fingerprint = fingerprint or plans_fingerprint(plans)
+    store = Store.create(
+        Path(out),
+        plans=plans,
+        metrics=metrics,
+        fingerprint=fingerprint,
+        name=name,
+        spec=spec,
+        spec_toml=spec_toml,
+        root_seed=plans[0].seed_entropy if plans else None,
+        command=command,
+    )
+    ok = store.ok_ids()
+    todo: list[RunPlan] = []
+    seen: set[str] = set()
+    for plan in plans:  # one plan per distinct run_id, in index order
+        if plan.run_id not in ok and plan.run_id not in seen:
+            seen.add(plan.run_id)
+            todo.append(plan)
+    pending_rows = sum(1 for p in plans if p.run_id not in ok)
+    backend = None
+    status = "complete"
+    enabled = (show_progress() if progress is None else bool(progress)) and bool(todo)
+    bar = _Progress(enabled, pending_rows, name)
+    try:
+        if todo:
+            backend = _backend(workers, scheduler, dask_local, len(todo))
+            store.manifest["backend"] = backend.describe()
+            _sweep(
+                backend,
+                todo,
+                store,
+                fail_fast=fail_fast,
+                progress=bar,
+                flush_interval=flush_interval,
+            )
+    except SweepStopped:
+        status = "stopped"
+        raise
+    except KeyboardInterrupt:
+        status = "interrupted"
+        raise
+    except BaseException:
+        status = "crashed"
+        raise
+    finally:
+        bar.close()
+        if backend is not None:
+            backend.close(cancel=status != "complete")
+        if store.counts()["failed"] and status == "complete":
+            status = "complete-with-failures"
+        store.finish(status)
+        for msg, count in store.warnings.items():
+            warnings.warn(f"{msg} ({count} run(s))", RuntimeWarning, stacklevel=3)
+    return store
+
+
+# -- experiments ---------------------------------------------------------------------------
+def _as_spec(spec_or_path, overrides: Sequence[str]):
+    from propensim.experiments.spec import load_spec
+
+    if hasattr(spec_or_path, "runs") and hasattr(spec_or_path, "fingerprint"):
+        if not overrides:
+            return spec_or_path
+        return load_spec(spec_or_path.resolved(), overrides)
+    return load_spec(spec_or_path, overrides)
+
+
+def default_out(name: str) -> Path:
+    """Where an experiment's results go by default: ``./results/<name>``."""
+    return Path("results") / name
+
+
+def run_experiment(
+    spec_or_path,
+    out=None,
+    *,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    dask_local: int | None = None,
+    fail_fast: bool = False,
+    overrides: Sequence[str] = (),
+    progress: bool | None = None,
+) -> Store:
+    """Run every run of an experiment into its results folder.
+
+    Parameters
+    ----------
+    spec_or_path : Spec, str, Path or mapping
+        A loaded spec, a TOML spec file, or the same structure as a dict.
+    out : str or Path, optional
+        Results folder; default ``./results/<experiment name>``. Running the same spec into the
+        same folder again resumes: completed runs are skipped, failed runs tried again. A changed
+        spec is refused.
+    workers : int, optional
+        Local worker processes (default: the CPUs available; 1 runs in this process).
+    scheduler : str, optional
+        Address of a Dask scheduler to run on instead (``"tcp://host:8786"``).
+    dask_local : int, optional
+        Start a local Dask cluster of this many worker processes instead.
+    fail_fast : bool
+        Stop at the first failed run.
+    overrides : sequence of str
+        ``"dotted.path=value"`` changes to the spec (as ``--set`` on the command line).
+    progress : bool, optional
+        Show a progress bar; default only when stderr is a terminal and ``CI`` is not set.
+
+    Returns
+    -------
+    Store
+        The results folder; ``store.load()`` reads it back, ``store.counts()`` counts runs.
+
+    Raises
+    ------
+    SpecError
+        The spec is invalid (nothing is run).
+    StoreError
+        ``out`` holds another experiment, or unreadable files (nothing is changed).
+    SweepStopped
+        The sweep stopped early; what finished is stored.
+    """
+    spec = _as_spec(spec_or_path, overrides)
+    plans = spec.runs()
+    out = Path(out) if out is not None else default_out(spec.name)
+    store = run_plans(
+        plans,
+        out,
+        name=spec.name,
+        metrics=list(spec.metrics),
+        fingerprint=spec.fingerprint(),
+        spec=spec.resolved(),
+        spec_toml=spec.to_toml(),
+        workers=workers,
+        scheduler=scheduler,
+        dask_local=dask_local,
+        fail_fast=fail_fast,
+        progress=progress,
+    )
+    if len(spec.arm_names) > 1:
+        from propensim.experiments.compare import compare_folder
+
+        store.comparison = compare_folder(store.path)
+        store.write_text("comparison.csv", store.comparison.to_csv(index=False))
+    return store
