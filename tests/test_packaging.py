@@ -17,8 +17,18 @@ LAYERS = ("agents", "plugins", "markets", "experiments")
 def test_wheel_installs_every_layer(tmp_path):
     dist = tmp_path / "dist"
     subprocess.run(
-        [sys.executable, "-m", "pip", "wheel", str(ROOT), "--no-deps", "--no-build-isolation",
-         "-w", str(dist), "-q"],
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "wheel",
+            str(ROOT),
+            "--no-deps",
+            "--no-build-isolation",
+            "-w",
+            str(dist),
+            "-q",
+        ],
         check=True,
     )
     wheel = next(dist.glob("propensim-*.whl"))
@@ -29,7 +39,9 @@ def test_wheel_installs_every_layer(tmp_path):
     # only from the wheel: a plain path entry does not run the editable install's finder.
     site = subprocess.run(
         [str(py), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
-        check=True, capture_output=True, text=True,
+        check=True,
+        capture_output=True,
+        text=True,
     ).stdout.strip()
     Path(site, "_deps.pth").write_text(sysconfig.get_paths()["purelib"] + "\n")
     subprocess.run([str(py), "-m", "pip", "install", "--no-deps", "-q", str(wheel)], check=True)
@@ -47,8 +59,9 @@ def test_wheel_installs_every_layer(tmp_path):
         print(json.dumps(out))
         """
     )
-    res = subprocess.run([str(py), "-c", code], check=True, capture_output=True, text=True,
-                         cwd=tmp_path)
+    res = subprocess.run(
+        [str(py), "-c", code], check=True, capture_output=True, text=True, cwd=tmp_path
+    )
     import json
 
     out = json.loads(res.stdout)
@@ -56,6 +69,7 @@ def test_wheel_installs_every_layer(tmp_path):
         assert out[layer].startswith(site), (layer, out[layer])
     assert "propensity" in out["clearing"] and "call_auction" in out["clearing"]
     assert out["n"] == 5
-    cli = subprocess.run([str(env_dir / "bin" / "propensim"), "--help"], capture_output=True,
-                         text=True, cwd=tmp_path)
+    cli = subprocess.run(
+        [str(env_dir / "bin" / "propensim"), "--help"], capture_output=True, text=True, cwd=tmp_path
+    )
     assert cli.returncode == 0 and "propensim" in cli.stdout

@@ -11,8 +11,13 @@ from propensim.markets import Market, MarketEngine, build_market, spawn_streams
 from propensim.plugins import TradingNetwork, UnknownPluginError, make_plugin
 
 BASE = {
-    "population": {"n_buyers": 40, "n_sellers": 40, "value": [80, 120], "cost": [60, 100],
-                   "sigma": 6.0},
+    "population": {
+        "n_buyers": 40,
+        "n_sellers": 40,
+        "value": [80, 120],
+        "cost": [60, 100],
+        "sigma": 6.0,
+    },
     "network": {"name": "erdos_renyi", "mean_degree": 6},
     "clearing": {"name": "propensity", "meetings": 2},
     "drift": {"rules": [{"name": "anchor"}, {"name": "outcome", "step": 0.2}], "noise": 0.1},
