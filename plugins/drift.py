@@ -1,0 +1,558 @@
+"""Drift rules: how the traders' curves move between rounds.
+
+Each trader's preferred price ``mu`` follows overdamped Langevin dynamics (MODEL.md section 5)::
+
+    d mu = (1 / eta) F_total dt + sqrt(2 D) dW
+
+with mobility ``1 / eta`` (price per force per time), diffusion coefficient ``D`` (``noise``,
+price^2 per time) and ``F_total`` the sum of the entropic forces the trader feels.
+
+**A drift is a sum of forces.** Every force rule here contributes a force that is linear in the
+trader's own ``mu``::
+
+    F = offset - stiffness * mu          # arrays of shape (n,)
+
+through a method ``terms(state, outcome) -> (stiffness, offset)``, and may also change the curve
+width through ``update_sigma(state, outcome, sigma) -> sigma``. :func:`combine` sums the terms of
+several rules (total stiffness ``k``, total offset ``c``) and takes one *exact* step of the
+resulting Ornstein-Uhlenbeck process: with ``x = k dt / eta``,
+
+    mu' = mu e^(-x) + (c dt / eta) phi(x) + sqrt(2 D dt phi(2 x)) xi,   phi(x) = (1 - e^(-x)) / x,
+
+which for ``k > 0`` is the OU update around the rest point ``m = c / k`` (decay ``e^(-k dt/eta)``,
+stationary variance ``D eta / k``) and for ``k == 0`` (``phi(0) = 1``) is the exact Brownian step
+with constant drift ``c / eta``. The step is exact for any ``dt``: large steps stay stable, unlike
+an Euler step. Neighbours' prices enter a trader's force at their values at the start of the step
+(the force is linear in the trader's own price only), so a coupled rule such as
+:class:`SocialDrift` is exact per trader given its neighbours, not for the network as a whole.
+
+Each single rule is also a complete :class:`~propensim.plugins.contracts.DriftRule`: its
+``apply`` is ``combine([rule], eta=rule.eta, noise=rule.noise, dt=rule.dt).apply``.
+
+References
+----------
+G. E. Uhlenbeck and L. S. Ornstein, "On the theory of the Brownian motion", Phys. Rev. 36:823
+(1930). D. T. Gillespie, "Exact numerical simulation of the Ornstein-Uhlenbeck process and its
+integral", Phys. Rev. E 54:2084 (1996).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from typing import ClassVar
+
+import numpy as np
+
+from propensim.agents.population import BUYER, SELLER
+from propensim.plugins.types import MarketState, RoundOutcome
+
+__all__ = [
+    "AnchorDrift",
+    "DriftSum",
+    "NoDrift",
+    "OutcomeDrift",
+    "SocialDrift",
+    "WidthAdaptation",
+    "combine",
+    "ou_step",
+]
+
+
+# -- parameter checks ----------------------------------------------------------------------------
+def _number(owner: str, name: str, value) -> float:
+    try:
+        out = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{owner}: {name} must be a number, got {value!r}") from None
+    if math.isnan(out):
+        raise ValueError(f"{owner}: {name} must be a number, got NaN")
+    return out
+
+
+def _require(owner: str, name: str, value, ok, allowed: str) -> None:
+    """Raise a one-line ValueError unless ``ok(float(value))``."""
+    x = _number(owner, name, value)
+    if not ok(x):
+        raise ValueError(f"{owner}: {name} must be {allowed}, got {value!r}")
+
+
+def _check_langevin(owner: str, eta, noise, dt) -> None:
+    _require(owner, "eta", eta, lambda x: 0 < x < math.inf, "> 0 and finite")
+    _require(owner, "noise", noise, lambda x: 0 <= x < math.inf, ">= 0 and finite")
+    _require(owner, "dt", dt, lambda x: 0 < x < math.inf, "> 0 and finite")
+
+
+# -- the exact step ------------------------------------------------------------------------------
+def _phi(x: np.ndarray) -> np.ndarray:
+    """``(1 - exp(-x)) / x`` with its limit 1 at ``x = 0``, accurate for small ``|x|``."""
+    x = np.asarray(x, dtype=float)
+    tiny = np.abs(x) < 1e-8  # shape: like x
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        ratio = -np.expm1(-x) / x
+    return np.where(tiny, 1.0 - 0.5 * x, ratio)
+
+
+def ou_step(
+    mu: np.ndarray,
+    stiffness: np.ndarray,
+    offset: np.ndarray,
+    *,
+    eta: float = 1.0,
+    noise: float = 0.0,
+    dt: float = 1.0,
+    rng: np.random.Generator | None = None,
+) -> np.ndarray:
+    """One exact step of ``d mu = (offset - stiffness * mu) / eta dt + sqrt(2 noise) dW``.
+
+    Parameters
+    ----------
+    mu : ndarray, shape (n,)
+        Preferred prices now (price units).
+    stiffness, offset : ndarray, shape (n,) or scalar
+        Total force ``F = offset - stiffness * mu`` (stiffness in force per price, offset in force).
+    eta : float
+        Friction (force time per price); the mobility is ``1 / eta``.
+    noise : float
+        Diffusion coefficient ``D`` (price^2 per time), ``>= 0``.
+    dt : float
+        Time step (> 0; any size: the step is exact).
+    rng : numpy.random.Generator, optional
+        Needed only when ``noise > 0``; ``n`` standard normal draws are taken from it.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        The new preferred prices. For ``stiffness > 0`` the conditional law is normal with mean
+        ``m + (mu - m) exp(-k dt / eta)`` (``m = offset / stiffness``) and variance
+        ``(D eta / k) (1 - exp(-2 k dt / eta))``; for ``stiffness == 0`` mean
+        ``mu + offset dt / eta`` and variance ``2 D dt``.
+
+    References
+    ----------
+    Uhlenbeck and Ornstein, Phys. Rev. 36:823 (1930) (the process and its stationary law);
+    Gillespie, Phys. Rev. E 54:2084 (1996) (the exact update).
+    """
+    mu = np.asarray(mu, dtype=float)
+    x = np.asarray(stiffness, dtype=float) * (dt / eta)  # shape: (n,)
+    mean = mu * np.exp(-x) + np.asarray(offset, dtype=float) * (dt / eta) * _phi(x)  # shape: (n,)
+    if noise == 0:
+        return np.array(np.broadcast_to(mean, mu.shape), dtype=float)
+    if rng is None:
+        raise ValueError("ou_step: rng is required when noise > 0")
+    sd = np.sqrt(2.0 * noise * dt * _phi(2.0 * x))  # shape: (n,)
+    return mean + sd * rng.standard_normal(mu.shape)
+
+
+# -- who could trade -----------------------------------------------------------------------------
+def _outcome_masks(state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
+    """``(traded, missed)`` boolean masks of shape (n,).
+
+    A trader *missed* when it did not trade although it could have: it had capacity, a seller had
+    stock, a buyer had cash. Traders who could not trade at all (out of stock, out of cash, zero
+    capacity) are neither, so outcome rules leave them alone.
+    """
+    pop = state.population
+    traded = np.asarray(outcome.traded) > 0  # shape: (n,)
+    out_of_stock = (pop.role == SELLER) & (pop.stock <= 0)  # shape: (n,)
+    out_of_cash = (pop.role == BUYER) & (pop.cash <= 0)  # shape: (n,)
+    could_trade = (pop.capacity > 0) & ~out_of_stock & ~out_of_cash  # shape: (n,)
+    missed = ~traded & could_trade  # shape: (n,)
+    return traded, missed
+
+
+# -- the base of the force rules -----------------------------------------------------------------
+class _ForceRule:
+    """Shared behaviour of the built-in force rules (not part of the contract)."""
+
+    eta: float = 1.0
+    noise: float = 0.0
+    dt: float = 1.0
+
+    def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
+        """Linear force ``F = offset - stiffness * mu``: return ``(stiffness, offset)``."""
+        n = len(state.population)
+        return np.zeros(n), np.zeros(n)
+
+    def update_sigma(
+        self, state: MarketState, outcome: RoundOutcome, sigma: np.ndarray
+    ) -> np.ndarray:
+        """New curve widths given the current ones (default: unchanged)."""
+        return sigma
+
+    def check(self) -> None:
+        """Raise ValueError naming a parameter out of range."""
+        _check_langevin(type(self).__name__, self.eta, self.noise, self.dt)
+
+    def apply(
+        self, state: MarketState, outcome: RoundOutcome, rng: np.random.Generator
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Apply the rule alone: ``combine([self], eta=self.eta, noise=self.noise, dt=self.dt)``."""
+        step = DriftSum(rules=(self,), eta=self.eta, noise=self.noise, dt=self.dt)
+        return step.apply(state, outcome, rng)
+
+    def __repr__(self) -> str:
+        params = ", ".join(f"{k}={v!r}" for k, v in vars(self).items() if k != "plugin_name")
+        return f"{type(self).__name__}({params})"
+
+
+class NoDrift(_ForceRule):
+    """Curves stay where they are.
+
+    ``apply`` returns copies of ``mu`` and ``sigma``; in a sum it contributes no force.
+    """
+
+    description: ClassVar[str] = "curves do not move between rounds"
+
+    def __init__(self) -> None:
+        pass
+
+    def check(self) -> None:
+        """Nothing to check."""
+
+    def apply(
+        self, state: MarketState, outcome: RoundOutcome, rng: np.random.Generator
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Return unchanged copies of ``mu`` and ``sigma``."""
+        pop = state.population
+        return pop.mu.copy(), pop.sigma.copy()
+
+
+class AnchorDrift(_ForceRule):
+    """The spring of a trader's own curve around its private value or cost.
+
+    The normal curve centred on the trader's value ``v`` with the trader's width ``sigma`` exerts
+    the entropic force ``F = -strength * gamma (mu - v) / sigma^2`` (MODEL.md section 2): a linear
+    spring of stiffness ``k = strength * gamma / sigma^2`` with rest point ``v``. Alone it makes
+    ``mu`` an Ornstein-Uhlenbeck process with stationary mean ``v``, variance ``D eta / k`` and
+    autocorrelation ``exp(-k t / eta)``.
+
+    Parameters
+    ----------
+    eta : float
+        Friction (> 0); mobility ``1 / eta``.
+    noise : float
+        Diffusion coefficient ``D`` (price^2 per time, >= 0).
+    dt : float
+        Time per round (> 0).
+    strength : float
+        Multiplier of the spring (>= 0, dimensionless).
+
+    References
+    ----------
+    Uhlenbeck and Ornstein, Phys. Rev. 36:823 (1930); Gillespie, Phys. Rev. E 54:2084 (1996).
+    """
+
+    description: ClassVar[str] = "spring of each trader's curve around its private value or cost"
+
+    def __init__(
+        self, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0, strength: float = 1.0
+    ) -> None:
+        self.eta = eta
+        self.noise = noise
+        self.dt = dt
+        self.strength = strength
+
+    def check(self) -> None:
+        """Raise ValueError naming a parameter out of range."""
+        super().check()
+        _require("AnchorDrift", "strength", self.strength, lambda x: 0 <= x < math.inf, ">= 0")
+
+    def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
+        """``stiffness = strength * gamma / sigma^2``, ``offset = stiffness * value``."""
+        pop = state.population
+        stiffness = self.strength * pop.gamma / pop.sigma**2  # shape: (n,)
+        return stiffness, stiffness * pop.value
+
+
+class OutcomeDrift(_ForceRule):
+    """Learning from the round: winners ask for a better price, losers concede.
+
+    A constant force of size ``step`` (stiffness 0): a buyer who traded is pushed down (it asks a
+    lower price next time) and a seller who traded up; a trader who missed a trade it could have
+    made concedes toward the other side (buyer up, seller down). Traders who could not trade
+    (no capacity, a seller without stock, a buyer without cash) feel nothing. With ``eta = dt = 1``
+    and no other force, ``mu`` moves by exactly ``step`` per round.
+
+    Parameters
+    ----------
+    step : float
+        Force size (>= 0; price per time when ``eta = 1``).
+    eta, noise, dt : float
+        As in :class:`AnchorDrift`.
+
+    References
+    ----------
+    A simple adaptive-aspiration rule in the spirit of D. Cliff and J. Bruten, HP Labs
+    HPL-97-141 (1997): traders raise their margins after a trade and lower them after a miss.
+    """
+
+    description: ClassVar[str] = "traders who traded ask a better price, traders who missed concede"
+
+    def __init__(
+        self, step: float = 0.5, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0
+    ) -> None:
+        self.step = step
+        self.eta = eta
+        self.noise = noise
+        self.dt = dt
+
+    def check(self) -> None:
+        """Raise ValueError naming a parameter out of range."""
+        super().check()
+        _require("OutcomeDrift", "step", self.step, lambda x: 0 <= x < math.inf, ">= 0 and finite")
+
+    def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
+        """Stiffness 0; offset ``-step`` / ``+step`` by role and outcome."""
+        pop = state.population
+        traded, missed = _outcome_masks(state, outcome)
+        better = np.where(pop.role == BUYER, -1.0, 1.0)  # shape: (n,): a better price for them
+        direction = np.where(traded, better, np.where(missed, -better, 0.0))  # shape: (n,)
+        return np.zeros(len(pop)), self.step * direction
+
+
+class SocialDrift(_ForceRule):
+    """The pull of network neighbours' curves.
+
+    Trader ``i`` feels the entropic force of each neighbour ``j``'s normal curve at its own price,
+    averaged over its neighbours (normalised by degree, so a hub is not pulled harder than a
+    trader with one neighbour)::
+
+        F_i = strength * gamma_i / deg_i * sum_j -(mu_i - mu_j) / sigma_j^2
+
+    Neighbours are the edges of ``state.network.social`` (both directions, whatever the roles);
+    a trader without neighbours feels nothing. Linear in ``mu_i``: stiffness
+    ``strength * gamma_i / deg_i * sum_j 1 / sigma_j^2``. Neighbours' ``mu_j`` are taken at the
+    start of the step.
+
+    Parameters
+    ----------
+    strength : float
+        Multiplier (>= 0).
+    eta, noise, dt : float
+        As in :class:`AnchorDrift`.
+
+    References
+    ----------
+    The entropic force ``F = gamma d/dx ln P`` of MODEL.md section 2 applied to a neighbour's
+    normal curve; averaging over neighbours as in linear opinion dynamics (M. H. DeGroot,
+    J. Am. Stat. Assoc. 69:118-121, 1974).
+    """
+
+    description: ClassVar[str] = "pull of each trader's price toward its network neighbours' curves"
+
+    def __init__(
+        self, strength: float = 1.0, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0
+    ) -> None:
+        self.strength = strength
+        self.eta = eta
+        self.noise = noise
+        self.dt = dt
+
+    def check(self) -> None:
+        """Raise ValueError naming a parameter out of range."""
+        super().check()
+        _require("SocialDrift", "strength", self.strength, lambda x: 0 <= x < math.inf, ">= 0")
+
+    def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
+        """Degree-normalised sum of neighbours' springs."""
+        pop = state.population
+        n = len(pop)
+        u, v = state.network.social
+        u = np.asarray(u, dtype=np.int64)
+        v = np.asarray(v, dtype=np.int64)
+        not_loop = u != v  # shape: (n_social,)
+        u, v = u[not_loop], v[not_loop]
+        weight = 1.0 / pop.sigma[v] ** 2  # shape: (n_social,)
+        degree = np.bincount(u, minlength=n)  # shape: (n,)
+        sum_w = np.bincount(u, weights=weight, minlength=n)  # shape: (n,)
+        sum_wmu = np.bincount(u, weights=weight * pop.mu[v], minlength=n)  # shape: (n,)
+        scale = self.strength * pop.gamma / np.maximum(degree, 1)  # shape: (n,)
+        return scale * sum_w, scale * sum_wmu
+
+
+class WidthAdaptation(_ForceRule):
+    """Curves narrow after a trade and widen after a miss.
+
+    ``sigma *= (1 - narrow)`` for a trader who traded, ``sigma *= (1 + widen)`` for one who
+    missed a trade it could have made, then clipped to ``[sigma_min, sigma_max]``; traders who
+    could not trade keep their width. No force on ``mu``.
+
+    Parameters
+    ----------
+    narrow : float
+        Fractional narrowing after a trade, in [0, 1).
+    widen : float
+        Fractional widening after a miss, >= 0.
+    sigma_min, sigma_max : float
+        Bounds of the width (price units, ``0 < sigma_min <= sigma_max``; ``sigma_max`` may be inf).
+
+    References
+    ----------
+    MODEL.md section 5 (sigma narrows after trades, widens after misses); the multiplicative
+    update with clipping is common practice, no source.
+    """
+
+    description: ClassVar[str] = "curves narrow after a trade and widen after a miss"
+
+    def __init__(
+        self,
+        narrow: float = 0.05,
+        widen: float = 0.05,
+        sigma_min: float = 1e-3,
+        sigma_max: float = math.inf,
+    ) -> None:
+        self.narrow = narrow
+        self.widen = widen
+        self.sigma_min = sigma_min
+        self.sigma_max = sigma_max
+
+    def check(self) -> None:
+        """Raise ValueError naming a parameter out of range."""
+        owner = "WidthAdaptation"
+        _require(owner, "narrow", self.narrow, lambda x: 0 <= x < 1, "in [0, 1)")
+        _require(owner, "widen", self.widen, lambda x: 0 <= x < math.inf, ">= 0 and finite")
+        _require(owner, "sigma_min", self.sigma_min, lambda x: 0 < x < math.inf, "> 0 and finite")
+        lo = float(self.sigma_min)
+        _require(owner, "sigma_max", self.sigma_max, lambda x: x >= lo, f">= sigma_min ({lo})")
+
+    def update_sigma(
+        self, state: MarketState, outcome: RoundOutcome, sigma: np.ndarray
+    ) -> np.ndarray:
+        """Multiply by ``1 - narrow`` or ``1 + widen``, then clip."""
+        traded, missed = _outcome_masks(state, outcome)
+        factor = np.where(traded, 1.0 - self.narrow, np.where(missed, 1.0 + self.widen, 1.0))
+        new = np.clip(sigma * factor, self.sigma_min, self.sigma_max)  # shape: (n,)
+        return np.minimum(new, np.finfo(float).max)
+
+    def apply(
+        self, state: MarketState, outcome: RoundOutcome, rng: np.random.Generator
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Keep ``mu``, adapt ``sigma``."""
+        return DriftSum(rules=(self,)).apply(state, outcome, rng)
+
+
+class DriftSum:
+    """Several force rules acting at once, stepped exactly as one Ornstein-Uhlenbeck process.
+
+    Sums the ``terms`` of every rule into a total stiffness ``k`` and offset ``c`` and takes one
+    exact step (see the module docstring and :func:`ou_step`); the rules' own ``eta``, ``noise``
+    and ``dt`` are ignored in favour of the sum's. Then applies each rule's ``update_sigma`` in
+    order. A ``DriftSum`` has ``terms`` and ``update_sigma`` itself, so sums nest.
+
+    Parameters
+    ----------
+    rules : sequence of force rules
+        Objects with ``terms(state, outcome) -> (stiffness, offset)`` and optionally
+        ``update_sigma(state, outcome, sigma)``.
+    eta : float
+        Friction (> 0).
+    noise : float
+        Diffusion coefficient ``D`` (price^2 per time, >= 0); one standard normal draw per trader
+        per step when > 0, none otherwise.
+    dt : float
+        Time per round (> 0).
+
+    References
+    ----------
+    Uhlenbeck and Ornstein, Phys. Rev. 36:823 (1930); Gillespie, Phys. Rev. E 54:2084 (1996).
+    """
+
+    description: ClassVar[str] = "sum of force rules stepped exactly as one Ornstein-Uhlenbeck move"
+
+    def __init__(
+        self, rules: Iterable = (), eta: float = 1.0, noise: float = 0.0, dt: float = 1.0
+    ) -> None:
+        self.rules = rules
+        self.eta = eta
+        self.noise = noise
+        self.dt = dt
+
+    def check(self) -> None:
+        """Raise ValueError for bad parameters or a rule that cannot be summed."""
+        _check_langevin("DriftSum", self.eta, self.noise, self.dt)
+        for rule in self.rules:
+            if not callable(getattr(rule, "terms", None)):
+                raise ValueError(
+                    f"DriftSum: rules must be force rules with a terms() method; "
+                    f"{type(rule).__name__} has none"
+                )
+            check = getattr(rule, "check", None)
+            if callable(check):
+                check()
+
+    def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
+        """Total ``(stiffness, offset)`` of the rules, shape (n,) each."""
+        n = len(state.population)
+        stiffness = np.zeros(n)  # shape: (n,)
+        offset = np.zeros(n)  # shape: (n,)
+        for rule in self.rules:
+            k, c = rule.terms(state, outcome)
+            stiffness += k
+            offset += c
+        return stiffness, offset
+
+    def update_sigma(
+        self, state: MarketState, outcome: RoundOutcome, sigma: np.ndarray
+    ) -> np.ndarray:
+        """Each rule's width update, in order."""
+        for rule in self.rules:
+            update = getattr(rule, "update_sigma", None)
+            if callable(update):
+                sigma = update(state, outcome, sigma)
+        return sigma
+
+    def apply(
+        self, state: MarketState, outcome: RoundOutcome, rng: np.random.Generator
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Return new ``(mu, sigma)``; the population is not modified."""
+        self.check()
+        pop = state.population
+        stiffness, offset = self.terms(state, outcome)
+        mu = ou_step(
+            pop.mu,
+            stiffness,
+            offset,
+            eta=float(self.eta),
+            noise=float(self.noise),
+            dt=float(self.dt),
+            rng=rng,
+        )
+        sigma = np.array(self.update_sigma(state, outcome, pop.sigma.copy()), dtype=float)
+        return mu, sigma
+
+    def __repr__(self) -> str:
+        return (
+            f"DriftSum(rules={list(self.rules)!r}, eta={self.eta!r}, noise={self.noise!r}, "
+            f"dt={self.dt!r})"
+        )
+
+
+def combine(rules: Iterable, *, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0) -> DriftSum:
+    """Sum force rules into one drift rule.
+
+    Parameters
+    ----------
+    rules : iterable of force rules or registered drift names
+        A name (``"anchor"``) is built with its default parameters through the registry.
+    eta, noise, dt : float
+        Friction, diffusion coefficient and time step of the summed dynamics (see
+        :class:`DriftSum`).
+
+    Returns
+    -------
+    DriftSum
+        A :class:`~propensim.plugins.contracts.DriftRule` (already checked).
+
+    Examples
+    --------
+    >>> drift = combine([AnchorDrift(strength=2.0), OutcomeDrift(step=0.1)], noise=0.5)
+    >>> type(drift).__name__
+    'DriftSum'
+    """
+    from propensim.plugins.registry import make_plugin
+
+    built = tuple(make_plugin("drift", r) if isinstance(r, str) else r for r in rules)
+    out = DriftSum(rules=built, eta=eta, noise=noise, dt=dt)
+    out.check()
+    return out
