@@ -342,7 +342,20 @@ def cmd_demo(args) -> int:
 
     spec = load_spec(demo_spec_path())
     print(f"demo: {spec.name}: {spec.n_runs} runs", file=sys.stderr)
+    print(
+        "Growers (sellers) and kitchens (buyers) in three towns; propensity matching against a "
+        "uniform-price call auction, at three levels of price uncertainty (curve width sigma).\n"
+    )
     store, code = _sweep(spec, args.out, workers=args.workers, quiet=args.quiet)
+    if store is not None:
+        from propensim.experiments.compare import point_means
+        from propensim.experiments.store import load
+
+        params = list(spec.design.get("parameters") or {})
+        metrics = list(spec.compare.metrics) if spec.compare else spec.metrics
+        table = point_means(load(store.path).runs, metrics, params)
+        print("\nMeans per design point and arm (paired differences above):")
+        print(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
     print(CAUTION)
     return code
 

@@ -7,7 +7,9 @@ replicates than comparing two independent samples.
 
 For each metric and each arm against the baseline the table gives the mean paired difference, a
 bootstrap percentile confidence interval of that mean, and the share of pairs in which each side is
-higher (ties split half and half).
+better (ties split half and half). "Better" follows the metric's ``better`` attribute (higher
+efficiency, lower price dispersion); for a metric with no better direction (a price level) it
+means higher, and the table says so.
 
 References
 ----------
@@ -36,6 +38,7 @@ COLUMNS = (
     "ci_low",
     "ci_high",
     "confidence",
+    "better",
     "arm_wins",
     "baseline_wins",
 )
@@ -102,6 +105,7 @@ def compare_arms(
     bootstrap: int = 2000,
     seed: int = 0,
     by_point: bool = False,
+    directions: dict[str, str | None] | None = None,
 ):
     """Paired differences of every arm against the baseline, per metric.
 
@@ -122,14 +126,17 @@ def compare_arms(
         Seed of the bootstrap (the table is reproducible).
     by_point : bool
         One row per design point as well (column ``point``).
+    directions : dict, optional
+        ``metric -> "higher" | "lower" | None``: which direction is better. ``arm_wins`` counts
+        the pairs where the arm is better; ``None`` or a missing metric counts "higher".
 
     Returns
     -------
     pandas.DataFrame
         Columns :data:`COLUMNS` (plus ``point``): pairs used (both runs ok and finite),
         means of each side, mean difference ``arm - baseline`` and its interval, and the share
-        of pairs in which the arm is higher (``arm_wins``) or the baseline is (ties count half
-        to each).
+        of pairs in which the arm is better (``arm_wins``; column ``better`` says which
+        direction counts) or the baseline is (ties count half to each).
 
     References
     ----------
@@ -149,6 +156,12 @@ def compare_arms(
 
     _check(confidence, bootstrap)
     metrics = [metrics] if isinstance(metrics, str) else list(metrics)
+    directions = dict(directions or {})
+    for metric, way in directions.items():
+        if way not in ("higher", "lower", None):
+            raise ValueError(
+                f"directions[{metric!r}] must be 'higher', 'lower' or None, got {way!r}"
+            )
     if not metrics:
         raise ValueError("metrics must name at least one metric column")
     for col in ("arm", "point", "replicate", *metrics):
@@ -182,8 +195,20 @@ def compare_arms(
                 rng = np.random.default_rng(
                     np.random.SeedSequence(seed, spawn_key=(i_arm, i_metric, i_group))
                 )
+                way = directions.get(metric)
                 rows.append(
-                    _row(metric, arm, baseline, point, a[mask], b[mask], confidence, bootstrap, rng)
+                    _row(
+                        metric,
+                        arm,
+                        baseline,
+                        point,
+                        a[mask],
+                        b[mask],
+                        confidence,
+                        bootstrap,
+                        rng,
+                        way,
+                    )
                 )
     columns = list(COLUMNS)
     if by_point:
@@ -194,13 +219,13 @@ def compare_arms(
     return table
 
 
-def _row(metric, arm, baseline, point, a, b, confidence, n_resamples, rng) -> dict:
+def _row(metric, arm, baseline, point, a, b, confidence, n_resamples, rng, way) -> dict:
     diffs = a - b  # shape: (n_pairs,)
     n = diffs.size
     lo, hi = bootstrap_mean_ci(diffs, confidence=confidence, n_resamples=n_resamples, rng=rng)
-    arm_higher = diffs > 0
+    arm_better = diffs < 0 if way == "lower" else diffs > 0
     tied = diffs == 0
-    wins = (np.count_nonzero(arm_higher) + 0.5 * np.count_nonzero(tied)) / n if n else np.nan
+    wins = (np.count_nonzero(arm_better) + 0.5 * np.count_nonzero(tied)) / n if n else np.nan
     return {
         "metric": metric,
         "arm": arm,
@@ -213,6 +238,7 @@ def _row(metric, arm, baseline, point, a, b, confidence, n_resamples, rng) -> di
         "ci_low": lo,
         "ci_high": hi,
         "confidence": float(confidence),
+        "better": way,
         "arm_wins": float(wins),
         "baseline_wins": float(1 - wins) if n else np.nan,
     }
@@ -254,15 +280,30 @@ def compare_folder(
     arms = set(runs["arm"])
     if len(arms) < 2:
         raise ValueError(f"{folder}: the experiment has one arm; nothing to compare")
+    metrics = list(metrics) if metrics else settings["metrics"]
     return compare_arms(
         runs,
-        list(metrics) if metrics else settings["metrics"],
+        metrics,
         baseline or settings["baseline"],
         confidence=settings["confidence"],
         bootstrap=settings["bootstrap"],
         seed=seed,
         by_point=by_point,
+        directions=metric_directions(metrics),
     )
+
+
+def metric_directions(metrics: Sequence[str]) -> dict[str, str | None]:
+    """The better direction of each registered metric (``None`` for unknown or neutral ones)."""
+    from propensim.plugins import registry
+
+    out: dict[str, str | None] = {}
+    for name in metrics:
+        try:
+            out[name] = getattr(registry.get_plugin("metrics", name), "better", None)
+        except registry.UnknownPluginError:
+            out[name] = None
+    return out
 
 
 def format_table(table) -> str:
@@ -280,7 +321,8 @@ def format_table(table) -> str:
         "mean diff",
         f"{level}CI low",
         "CI high",
-        "arm wins",
+        "better",
+        "arm better",
     ]
     lines = []
     for r in table.to_dict("records"):
@@ -292,6 +334,7 @@ def format_table(table) -> str:
             f"{r['mean_diff']:+.4g}",
             f"{r['ci_low']:+.4g}",
             f"{r['ci_high']:+.4g}",
+            r["better"] if isinstance(r["better"], str) else "(higher)",
             "nan" if pd.isna(r["arm_wins"]) else f"{100 * r['arm_wins']:.0f}%",
         ]
         lines.append(cells)
@@ -305,3 +348,28 @@ def format_table(table) -> str:
         ).rstrip()
 
     return "\n".join([fmt(header), *(fmt(c) for c in lines)])
+
+
+def point_means(runs, metrics: Sequence[str], parameters: Sequence[str]):
+    """Mean of each metric per design point and arm, labelled by the point's parameter values.
+
+    Parameters
+    ----------
+    runs : pandas.DataFrame
+        The runs table (only ``status == "ok"`` rows count).
+    metrics : sequence of str
+        Metric columns.
+    parameters : sequence of str
+        Design parameter columns (dotted paths) that label the points.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per (parameters..., arm), columns ``n`` and the metric means.
+    """
+    ok = runs[runs["status"] == "ok"] if "status" in runs.columns else runs
+    keys = [*parameters, "arm"]
+    grouped = ok.groupby(keys, sort=True, dropna=False)
+    table = grouped[list(metrics)].mean()
+    table.insert(0, "n", grouped.size())
+    return table.reset_index()

@@ -94,7 +94,9 @@ class Metric(Protocol):
 
     Attributes
         ``aggregate``: how a run's rounds are summarised into one number, one of ``"mean"``,
-        ``"sum"``, ``"last"``, ``"final_half_mean"``.
+        ``"sum"``, ``"last"``, ``"final_half_mean"``; optionally ``better``: ``"higher"`` or
+        ``"lower"`` when one direction is better for the market (comparisons count wins by it),
+        ``None`` when neither is (a price level).
     Cost
         linear in trades and traders per round; anything costlier that does not change between
         rounds goes in ``state.cache`` once.

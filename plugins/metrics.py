@@ -180,6 +180,7 @@ class Volume:
 
     description: ClassVar[str] = "units traded in the round"
     aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "higher"
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Total quantity of the round's trades."""
@@ -191,6 +192,7 @@ class MeanPrice:
 
     description: ClassVar[str] = "mean price of the round's trades (each trade counted once)"
     aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = None
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Mean of ``trades.price``."""
@@ -203,6 +205,7 @@ class VolumeWeightedPrice:
 
     description: ClassVar[str] = "volume-weighted average price of the round's trades"
     aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = None
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``sum(p q) / sum(q)``."""
@@ -218,6 +221,7 @@ class PriceDispersion:
 
     description: ClassVar[str] = "standard deviation of the round's trade prices (per unit)"
     aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = "lower"
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Quantity-weighted population standard deviation."""
@@ -237,6 +241,7 @@ class PreferenceGap:
 
     description: ClassVar[str] = "mean sellers' preferred price minus mean buyers' preferred price"
     aggregate: ClassVar[str] = "last"
+    better: ClassVar[str | None] = None
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``mean(mu[sellers]) - mean(mu[buyers])``."""
@@ -253,6 +258,7 @@ class BuyerSurplus:
 
     description: ClassVar[str] = "buyers' surplus of the round, sum of (value - price) x quantity"
     aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "higher"
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Sum over trades."""
@@ -264,6 +270,7 @@ class SellerSurplus:
 
     description: ClassVar[str] = "sellers' surplus of the round, sum of (price - cost) x quantity"
     aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "higher"
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Sum over trades."""
@@ -289,6 +296,7 @@ class AllocativeEfficiency:
 
     description: ClassVar[str] = "realised surplus / largest achievable surplus on the network"
     aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = "higher"
 
     def benchmark(self, state: MarketState, outcome: RoundOutcome) -> float:
         """The largest achievable surplus for this round's traders (cached)."""
@@ -353,6 +361,7 @@ class SurplusGini:
 
     description: ClassVar[str] = "Gini coefficient of per-trader surplus in the round"
     aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = "lower"
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Gini of the per-trader surplus, shape (n,)."""
@@ -380,6 +389,7 @@ class SmithAlpha:
 
     description: ClassVar[str] = "Smith's alpha: RMS deviation of prices from equilibrium, % of it"
     aggregate: ClassVar[str] = "final_half_mean"
+    better: ClassVar[str | None] = "lower"
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``100 sqrt(sum q (p - P0)^2 / sum q) / P0``."""
@@ -407,6 +417,7 @@ class EntropicEnergy:
 
     description: ClassVar[str] = "total entropic energy to move every preferred price to its anchor"
     aggregate: ClassVar[str] = "last"
+    better: ClassVar[str | None] = None
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Sum over traders."""

@@ -149,3 +149,38 @@ def test_bad_arguments(kwargs, match):
     args = {"metrics": "m", "baseline": "a", **kwargs}
     with pytest.raises(ValueError, match=match):
         compare_arms(runs, args.pop("metrics"), args.pop("baseline"), **args)
+
+
+def test_wins_follow_the_metrics_better_direction():
+    import pandas as pd
+
+    from propensim.experiments.compare import compare_arms, metric_directions, point_means
+
+    runs = pd.DataFrame(
+        {
+            "arm": ["a", "b"] * 4,
+            "point": [0, 0, 0, 0, 1, 1, 1, 1],
+            "replicate": [0, 0, 1, 1, 0, 0, 1, 1],
+            "population.sigma": [3.0] * 4 + [6.0] * 4,
+            "price_sd": [2.0, 1.0, 3.0, 2.5, 4.0, 3.0, 1.0, 1.5],
+        }
+    )
+    # b has the lower dispersion in 3 of 4 pairs; lower dispersion is better (common practice)
+    lower = compare_arms(runs, "price_sd", "a", bootstrap=200, directions={"price_sd": "lower"})
+    higher = compare_arms(runs, "price_sd", "a", bootstrap=200)
+    assert lower.loc[0, "arm_wins"] == 0.75 and lower.loc[0, "better"] == "lower"
+    assert higher.loc[0, "arm_wins"] == 0.25 and higher.loc[0, "better"] is None
+    assert metric_directions(["efficiency", "price_sd", "vwap", "no_such"]) == {
+        "efficiency": "higher",
+        "price_sd": "lower",
+        "vwap": None,
+        "no_such": None,
+    }
+    means = point_means(runs, ["price_sd"], ["population.sigma"])
+    assert means["n"].tolist() == [2, 2, 2, 2]
+    assert (
+        means.loc[(means["population.sigma"] == 6.0) & (means["arm"] == "b"), "price_sd"].item()
+        == 2.25
+    )
+    with pytest.raises(ValueError, match="directions"):
+        compare_arms(runs, "price_sd", "a", directions={"price_sd": "up"})
