@@ -111,8 +111,7 @@ class PropensityMatching:
     """
 
     description: ClassVar[str] = (
-        "propensity matching: buyers meet random neighbouring sellers and trade with probability "
-        "= joint curve peak, at a price drawn from the joint curve"
+        "propensity matching: meetings trade with chance = joint curve peak, price drawn from it"
     )
 
     def __init__(
@@ -159,8 +158,7 @@ class PropensityMatchingPerAgent:
     """
 
     description: ClassVar[str] = (
-        "propensity matching, per-agent version: each buyer in turn meets random neighbouring "
-        "sellers (slow reference of 'propensity')"
+        "per-agent propensity matching: each buyer in turn meets sellers (slow reference version)"
     )
     per_agent: ClassVar[bool] = True
 
@@ -239,7 +237,7 @@ class CallAuction:
     """
 
     description: ClassVar[str] = (
-        "uniform-price call auction per connected part: bids and asks cross once, one k-rule price"
+        "uniform-price call auction per connected part: one k-rule price where bids and asks cross"
     )
 
     def __init__(self, k: float = 0.5, quotes: str = "reservation", threshold: float = 0.5) -> None:
@@ -308,8 +306,7 @@ class DoubleAuction:
     """
 
     description: ClassVar[str] = (
-        "continuous double auction with a standing book; zero-intelligence (zi_c, zi_u) or "
-        "curve-drawn quotes"
+        "continuous double auction with a standing book; zero-intelligence or curve-drawn quotes"
     )
 
     def __init__(
