@@ -471,7 +471,8 @@ class Regions:
     random and sits at its centre plus normal noise of standard deviation ``spread`` (clipped to
     the square). With ``spread=None`` traders are uniform over the whole square and the result is
     a plain random geometric graph. Two traders at distance ``<= radius`` are joined. Array-native
-    (``scipy.spatial.cKDTree``); :meth:`place` returns the positions.
+    (brute force up to 2000 traders, ``scipy.spatial.cKDTree`` beyond); :meth:`place` returns
+    the positions.
 
     Parameters
     ----------
@@ -519,13 +520,31 @@ class Regions:
 
     def build(self, role: np.ndarray, rng: np.random.Generator) -> TradingNetwork:
         """Place the traders and link the close pairs."""
-        from scipy.spatial import cKDTree
-
         role = _check_role(role)
         xy, _ = self.place(role, rng)
-        pairs = cKDTree(xy).query_pairs(float(self.radius), output_type="ndarray")
-        pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)  # shape: (n_pairs, 2)
+        pairs = _close_pairs(xy, float(self.radius))  # shape: (n_pairs, 2)
         return _from_edges(role, pairs[:, 0], pairs[:, 1])
+
+
+#: Up to this many points, close pairs are found by brute force (no scipy.spatial import,
+#: which costs ~0.5 s and would slow ``propensim check`` on small markets).
+_BRUTE_FORCE_POINTS = 2000
+
+
+def _close_pairs(xy: np.ndarray, radius: float) -> np.ndarray:
+    """Pairs ``i < j`` of points at distance ``<= radius``, sorted, shape (n_pairs, 2)."""
+    n = xy.shape[0]
+    if n <= _BRUTE_FORCE_POINTS:
+        i, j = np.triu_indices(n, k=1)  # shape: (n (n - 1) / 2,)
+        close = np.hypot(xy[i, 0] - xy[j, 0], xy[i, 1] - xy[j, 1]) <= radius
+        pairs = np.stack([i[close], j[close]], axis=1).astype(np.int64)
+    else:
+        from scipy.spatial import cKDTree
+
+        pairs = cKDTree(xy).query_pairs(radius, output_type="ndarray")
+        pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
+    order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+    return pairs[order]
 
 
 def _file_error(kind: str, path, exc: Exception) -> ValueError:

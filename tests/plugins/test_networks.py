@@ -363,3 +363,16 @@ def test_erdos_renyi_million_traders():
     net = ErdosRenyi(mean_degree=20.0).build(role, np.random.default_rng(0))
     assert net.n_edges == pytest.approx(1e7, rel=0.01)
     assert net.degree.mean() == pytest.approx(20.0, rel=0.01)
+
+
+def test_regions_brute_force_and_kd_tree_find_the_same_pairs():
+    # the KD-tree is scipy's reference answer for fixed-radius pairs (scipy.spatial docs)
+    from scipy.spatial import cKDTree
+
+    from propensim.plugins.networks import _close_pairs
+
+    xy = np.random.default_rng(3).random((700, 2))
+    ours = _close_pairs(xy, 0.05)
+    ref = np.asarray(sorted(map(tuple, cKDTree(xy).query_pairs(0.05, output_type="ndarray"))))
+    np.testing.assert_array_equal(ours, ref)
+    assert len(ours) > 100
