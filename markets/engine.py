@@ -19,7 +19,13 @@ from typing import Any
 
 import numpy as np
 
-from propensim.agents.population import BUYER, SELLER, Population, build_population
+from propensim.agents.population import (
+    BUYER,
+    ROLE_NAMES,
+    SELLER,
+    Population,
+    build_population,
+)
 from propensim.plugins import registry
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
@@ -73,8 +79,10 @@ class MarketEngine:
     ----------
     population : Population
         Trader columns; the market owns it from now on and writes it every round.
-    network : TradingNetwork
-        Buyer-seller edges over the same rows.
+    network : TradingNetwork or networkx.Graph
+        Buyer-seller edges over the same rows. A networkx graph is converted once (nodes in the
+        order of :func:`~propensim.plugins.networks.from_graph`); if its nodes carry a ``role``
+        attribute it must agree with the population's roles.
     clearing : ClearingRule
         A clearing plugin instance (see ``propensim plugins``).
     drift : DriftRule, optional
@@ -107,6 +115,8 @@ class MarketEngine:
         keep_ledger: bool = True,
     ) -> None:
         streams = spawn_streams(seed)
+        if not isinstance(network, TradingNetwork):
+            network = _network_from_graph(network, population)
         if network.n != len(population):
             raise ValueError(
                 f"network has {network.n} traders but population has {len(population)}; "
@@ -253,6 +263,29 @@ class MarketEngine:
             vals = np.array([row[name] for row in self._rows], dtype=float)
             out[name] = _aggregate(vals, getattr(metric, "aggregate", "mean"))
         return out
+
+
+def _network_from_graph(graph, population: Population) -> TradingNetwork:
+    from propensim.plugins.networks import from_graph
+
+    if not hasattr(graph, "nodes") or not hasattr(graph, "edges"):
+        raise ValueError(
+            f"network must be a TradingNetwork or a networkx graph, got {type(graph).__name__}"
+        )
+    if graph.number_of_nodes() != len(population):
+        raise ValueError(
+            f"network has {graph.number_of_nodes()} traders but population has "
+            f"{len(population)}; they must match"
+        )
+    tagged = any("role" in data for _, data in graph.nodes(data=True))
+    net, role = from_graph(graph) if tagged else from_graph(graph, role=population.role)
+    differ = np.flatnonzero(role != population.role)
+    if differ.size:
+        raise ValueError(
+            f"network node {net.labels[differ[0]]!r} has role {ROLE_NAMES[role[differ[0]]]!r} "
+            f"but population row {differ[0]} is a {ROLE_NAMES[population.role[differ[0]]]}"
+        )
+    return net
 
 
 def _aggregate(vals: np.ndarray, how: str) -> float:

@@ -132,3 +132,20 @@ def test_no_warning_on_a_healthy_market():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         build_market(dict(BASE, network="complete"), seed=0).run(2)
+
+
+def test_market_accepts_a_networkx_graph_with_roles():
+    import networkx as nx
+
+    # a 2 x 3 complete bipartite graph from networkx, roles as node attributes
+    graph = nx.complete_bipartite_graph(2, 3)
+    for node in graph:
+        graph.nodes[node]["role"] = "buyer" if node < 2 else "seller"
+    pop = build_population(2, 3, value=100.0, cost=90.0, sigma=5.0, rng=0)
+    m = MarketEngine(pop, graph, make_plugin("clearing", "propensity"), seed=0)
+    assert m.network.n_edges == 6  # networkx: |E(K_{2,3})| = 6
+    graph.nodes[0]["role"] = "seller"
+    with pytest.raises(ValueError, match="node 0 has role 'seller' but population row 0"):
+        MarketEngine(pop, graph, make_plugin("clearing", "propensity"), seed=0)
+    with pytest.raises(ValueError, match="network has 4 traders"):
+        MarketEngine(pop, nx.path_graph(4), make_plugin("clearing", "propensity"))
