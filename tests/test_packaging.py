@@ -24,7 +24,6 @@ def test_wheel_installs_every_layer(tmp_path):
             "wheel",
             str(ROOT),
             "--no-deps",
-            "--no-build-isolation",
             "-w",
             str(dist),
             "-q",
