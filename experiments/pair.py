@@ -28,7 +28,7 @@ class PairExample:
 def pair_rows(ex: PairExample = PairExample()) -> list[tuple[str, str, str]]:
     """The table as ``(quantity, buyer, seller)`` rows of text (pair-wide rows fill both)."""
     from propensim.agents.curves import NormalCurve
-    from propensim.agents.joint import joint
+    from propensim.agents.joint_curve import joint
     from propensim.agents.oscillator import level_energies, oscillator_mass
 
     b = NormalCurve(mu=ex.buyer_mu, sigma=ex.buyer_sigma)

@@ -17,7 +17,6 @@ two normal curves.
 from __future__ import annotations
 
 import dataclasses
-import inspect
 
 import numpy as np
 
@@ -28,13 +27,9 @@ from propensim.plugins.types import MarketState, Trades
 
 def _joint_of(pop: Population, b: np.ndarray, s: np.ndarray, grid_points: int):
     """Joint curves of the pairs (b, s) for a non-normal family (batch of JointCurve)."""
-    from propensim.agents import joint as joint_mod
+    from propensim.agents.joint_curve import grid_joint
 
-    cb, cs = pop.curves(b), pop.curves(s)
-    grid = getattr(joint_mod, "grid_joint", None)
-    if grid is not None and "points" in inspect.signature(grid).parameters:
-        return grid(cb, cs, points=grid_points)
-    return joint_mod.joint(cb, cs)
+    return grid_joint(pop.curves(b), pop.curves(s), points=grid_points)
 
 
 def normal_joint(mu_b, sig_b, a_b, mu_s, sig_s, a_s):

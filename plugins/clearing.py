@@ -101,7 +101,7 @@ class PropensityMatching:
     ``a_b a_s exp(-(mu_b - mu_s)^2 / (2 (s_b^2 + s_s^2)))`` and price
     ``N(mu*, sigma*^2)`` with ``mu* = (mu_b s_s^2 + mu_s s_b^2)/(s_b^2 + s_s^2)`` and
     ``sigma*^2 = s_b^2 s_s^2 / (s_b^2 + s_s^2)``. Other families go through
-    ``propensim.agents.joint``. Cost: O(buyers x meetings) array work per round, a few
+    ``propensim.agents.joint_curve``. Cost: O(buyers x meetings) array work per round, a few
     milliseconds at 1e5 traders.
 
     References

@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from propensim.agents import joint as joint_module
+from propensim.agents import joint_curve as joint_module
 from propensim.agents.curves import LogisticCurve, NormalCurve, OscillatorCurve, TabulatedCurve
-from propensim.agents.joint import JointCurve, grid_joint, joint
+from propensim.agents.joint_curve import JointCurve, grid_joint, joint
 
 # Measured agreement of the grid path with the closed form for normal pairs (1000 random pairs,
 # sigma from 0.01 to 20): peak and mass ~1e-14 relative, sd ~2e-15 relative, mean ~6e-12 sd.

@@ -7,7 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from propensim.agents.curves import LogisticCurve, NormalCurve, OscillatorCurve, TabulatedCurve
-from propensim.agents.joint import grid_joint, joint
+from propensim.agents.joint_curve import grid_joint, joint
 
 SETTINGS = settings(max_examples=25, deadline=None, derandomize=True)
 
