@@ -23,7 +23,9 @@ def in_process(spec, tmp_path_factory):
 @pytest.mark.slow
 def test_local_pool_of_two_matches_one_worker(spec, in_process, tmp_path):
     store = run_experiment(spec, tmp_path / "r", workers=2, progress=False)
-    assert store.manifest["backend"] == {"kind": "local", "workers": 2, "start_method": "spawn"}
+    backend = store.manifest["backend"]
+    assert backend["kind"] == "local" and backend["workers"] == 2
+    assert backend["start_method"] in ("forkserver", "spawn")
     assert (tmp_path / "r/runs.parquet").read_bytes() == (in_process / "runs.parquet").read_bytes()
     assert len(set(load(tmp_path / "r").timings["worker"])) == 2  # both workers took part
     assert load(tmp_path / "r").rounds.equals(load(in_process).rounds)
