@@ -81,7 +81,8 @@ def _from_edges(role: np.ndarray, u: np.ndarray, v: np.ndarray, **extra) -> Trad
     """Network over rows with ``role`` from undirected edges ``(u, v)`` (any roles, any order).
 
     Self-loops are dropped; buyer-seller edges become trading edges; every edge goes into
-    ``social`` in both directions, repeats removed.
+    ``social`` in both directions, repeats removed (left to the network to derive lazily when
+    every edge joins a buyer and a seller).
     """
     n = role.shape[0]
     u = np.asarray(u, dtype=np.int64).reshape(-1)
@@ -92,6 +93,8 @@ def _from_edges(role: np.ndarray, u: np.ndarray, v: np.ndarray, **extra) -> Trad
     u_is_buyer = role[u] == BUYER  # shape: (n_raw,)
     buyer = np.where(u_is_buyer, u, v)[mixed]  # shape: (n_edges,)
     seller = np.where(u_is_buyer, v, u)[mixed]  # shape: (n_edges,)
+    if mixed.all():  # no same-role edges: the network derives social edges when asked
+        return TradingNetwork(n=n, buyer=buyer, seller=seller, **extra)
     su = np.concatenate([u, v])  # shape: (2 n_raw,)
     sv = np.concatenate([v, u])
     key = np.sort(su * np.int64(n) + sv)

@@ -75,7 +75,6 @@ class Trades:
         return int(self.quantity.sum())
 
 
-@dataclass(eq=False)
 class TradingNetwork:
     """Who may trade with whom, as arrays of buyer-seller edges.
 
@@ -93,36 +92,53 @@ class TradingNetwork:
         True when every buyer is joined to every seller (lets rules use faster paths).
     social : tuple of ndarray, optional
         All edges of the source graph as ``(u, v)`` row-index arrays, both directions, used by
-        rules that feel their neighbours whatever their role. Defaults to the trading edges.
+        rules that feel their neighbours whatever their role. Defaults to the trading edges,
+        derived only when first read (a network of 1e7 edges saves 320 MB until then).
     labels : list, optional
         The source graph's node labels in row order (for reports).
     """
 
-    n: int
-    buyer: np.ndarray
-    seller: np.ndarray
-    complete: bool = False
-    social: tuple[np.ndarray, np.ndarray] | None = None
-    labels: list | None = None
-
-    def __post_init__(self) -> None:
-        b = np.asarray(self.buyer, dtype=np.int64).reshape(-1)
-        s = np.asarray(self.seller, dtype=np.int64).reshape(-1)
+    def __init__(
+        self,
+        n: int,
+        buyer,
+        seller,
+        complete: bool = False,
+        social: tuple[np.ndarray, np.ndarray] | None = None,
+        labels: list | None = None,
+    ) -> None:
+        self.n = int(n)
+        self.complete = bool(complete)
+        self.labels = labels
+        self._social = social
+        b = np.asarray(buyer, dtype=np.int64).reshape(-1)
+        s = np.asarray(seller, dtype=np.int64).reshape(-1)
         if b.shape != s.shape:
             raise ValueError("network buyer and seller edge arrays differ in length")
         if b.size and (min(b.min(), s.min()) < 0 or max(b.max(), s.max()) >= self.n):
             raise ValueError(f"network edges name traders outside 0..{self.n - 1}")
-        key = b * self.n + s
-        order = np.argsort(key, kind="stable")
-        key = key[order]
-        keep = np.ones(key.size, dtype=bool)
-        keep[1:] = key[1:] != key[:-1]
-        self.buyer, self.seller = b[order][keep], s[order][keep]
-        if self.social is None:
-            self.social = (
+        key = b * np.int64(self.n) + s  # shape: (n_raw,)
+        if key.size and not np.all(key[1:] > key[:-1]):  # builders mostly hand sorted edges
+            key = np.sort(key)
+            keep = np.ones(key.size, dtype=bool)
+            keep[1:] = key[1:] != key[:-1]
+            key = key[keep]
+            b, s = key // self.n, key % self.n
+        self.buyer, self.seller = b, s
+        self.__dict__["edge_key"] = key  # the cached_property below, already computed
+
+    def __repr__(self) -> str:
+        return f"TradingNetwork(n={self.n}, n_edges={self.n_edges}, complete={self.complete})"
+
+    @property
+    def social(self) -> tuple[np.ndarray, np.ndarray]:
+        """All edges, both directions, as ``(u, v)`` (derived from the trading edges if unset)."""
+        if self._social is None:
+            self._social = (
                 np.concatenate([self.buyer, self.seller]),
                 np.concatenate([self.seller, self.buyer]),
             )
+        return self._social
 
     @property
     def n_edges(self) -> int:
