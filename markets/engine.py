@@ -136,6 +136,7 @@ class MarketEngine:
         self._rng_drift = streams["drift"]
         self._initial_stock = population.stock.copy()
         self._initial_cash = population.cash.copy()
+        self._is_seller = population.role == SELLER  # shape: (n,) roles never change
         self._rows: list[dict[str, float]] = []
         self._ledger: list[tuple[int, Trades]] = []
         self._snapshots: list[dict[str, np.ndarray]] = []
@@ -161,12 +162,12 @@ class MarketEngine:
 
         pop, state = self.population, self.state
         if self.replenish:
-            pop.stock[:] = self._initial_stock
-            pop.cash[:] = self._initial_cash
+            np.copyto(pop.stock, self._initial_stock)
+            np.copyto(pop.cash, self._initial_cash)
         state.round = self.round
-        state.remaining = np.where(
-            pop.role == SELLER, np.minimum(pop.capacity, pop.stock), pop.capacity
-        ).astype(np.int64)
+        remaining = pop.capacity.astype(np.int64)  # shape: (n,) a seller also needs stock
+        np.minimum(remaining, pop.stock, out=remaining, where=self._is_seller)
+        state.remaining = remaining
         if getattr(self.clearing, "per_agent", False):
             from propensim.plugins.clearing import run_per_agent
 
@@ -201,7 +202,9 @@ class MarketEngine:
                 }
             )
         if len(trades):
-            state.last_price = float(np.average(trades.price, weights=trades.quantity))
+            # Not np.dot: BLAS may wake its threads for long vectors (costly on a shared machine).
+            q = trades.quantity
+            state.last_price = float((trades.price * q).sum() / q.sum())
         self.round += 1
 
     def run(self, rounds: int):

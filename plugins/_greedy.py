@@ -32,6 +32,7 @@ from __future__ import annotations
 import numpy as np
 
 OPEN, ACCEPTED, REJECTED = 0, 1, 2
+_NEVER = np.iinfo(np.int64).max  # a rank after every rank
 
 
 def _group_starts(groups: np.ndarray) -> np.ndarray:
@@ -74,6 +75,8 @@ def greedy_accept(
     price: np.ndarray | None = None,
     cash: np.ndarray | None = None,
     max_passes: int = 32,
+    unique_buyers: bool = False,
+    unique_order: bool = False,
 ) -> np.ndarray:
     """Which candidate unit trades a one-by-one greedy pass would accept.
 
@@ -95,6 +98,13 @@ def greedy_accept(
         Budget of each buyer row (``inf``: no budget).
     max_passes : int
         Vectorised passes before the remaining candidates are finished by a loop in order.
+    unique_buyers : bool
+        The caller guarantees that no buyer row appears twice in ``buyer``. With no budget and
+        at most one unit per seller the answer is then "first candidate of each seller", found
+        with one group minimum (``np.minimum.at``) instead of passes.
+    unique_order : bool
+        The caller guarantees that ``order`` has no ties (e.g. a permutation): the shortcut then
+        compares the keys as they are.
 
     Returns
     -------
@@ -108,6 +118,13 @@ def greedy_accept(
     buyer = np.asarray(buyer, dtype=np.int64)
     seller = np.asarray(seller, dtype=np.int64)
     n_rows = max(len(cap_buyer), len(cap_seller))
+    if unique_buyers and cash is None:
+        cap_s = np.asarray(cap_seller)[seller]  # shape: (m,)
+        if cap_s.max() <= 1:
+            can = np.asarray(cap_buyer)[buyer] > 0  # shape: (m,)
+            if cap_s.min() <= 0:
+                can &= cap_s > 0
+            return _first_per_seller(order, seller, can, n_rows, unique_order)
     cap_b = np.asarray(cap_buyer)[buyer].astype(np.int64)  # shape: (m,)
     cap_s = np.asarray(cap_seller)[seller].astype(np.int64)  # shape: (m,)
 
@@ -121,6 +138,8 @@ def greedy_accept(
             # Only budgeted buyers' spending matters; zeros elsewhere keep the cumsums small.
             spend = np.where(budgeted, np.asarray(price, dtype=float), 0.0)  # shape: (m,)
             cash_b = np.where(budgeted, cash_b, np.inf)
+    if unique_buyers and spend is None and cap_s.max() <= 1:
+        return _first_per_seller(order, seller, (cap_b > 0) & (cap_s > 0), n_rows, unique_order)
     status = np.zeros(m, dtype=np.int8)  # shape: (m,) OPEN, ACCEPTED or REJECTED
     status[(cap_b <= 0) | (cap_s <= 0)] = REJECTED
     if spend is not None:
@@ -184,6 +203,33 @@ def greedy_accept(
         if spend is not None:
             got_b[1] += float(spend[c])
     return status == ACCEPTED
+
+
+def _first_per_seller(
+    order: np.ndarray, seller: np.ndarray, can: np.ndarray, n_rows: int, unique: bool = False
+) -> np.ndarray:
+    """Greedy acceptance when every buyer has one candidate and every seller one unit.
+
+    Only sellers compete, so a candidate is accepted iff both its sides have a unit (``can``)
+    and it comes first in the order among its seller's such candidates: one group minimum
+    (``np.minimum.at``). Whole-number keys are made unique by position (``key * m + position``,
+    the order's tie rule) and need no sort.
+    """
+    m = order.shape[0]
+    if unique and order.dtype.kind in "iu":
+        rank = order  # no ties: the keys themselves
+    elif order.dtype.kind in "iu" and m < 2**31 and int(np.abs(order).max()) < 2**31:
+        rank = order.astype(np.int64) * m  # shape: (m,) key, then position: unique
+        rank += np.arange(m)
+    else:
+        rank = np.empty(m, dtype=np.int64)
+        rank[np.argsort(order, kind="stable")] = np.arange(m)
+    first = np.full(n_rows, _NEVER)  # scratch: each seller's first rank
+    if can.all():
+        np.minimum.at(first, seller, rank)
+        return first[seller] == rank
+    np.minimum.at(first, seller[can], rank[can])
+    return can & (first[seller] == rank)
 
 
 class _Side:

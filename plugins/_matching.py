@@ -17,6 +17,7 @@ two normal curves.
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import numpy as np
 
@@ -50,6 +51,40 @@ def normal_joint(mu_b, sig_b, a_b, mu_s, sig_s, a_s):
     return peak, mean, sd
 
 
+#: Key of the per-market cache entry holding the buyers that have trading partners.
+_CACHE_KEY = "propensity_matching.buyers"
+
+
+def _buyer_table(state: MarketState):
+    """The buyers who may meet someone, with their first edge and degree (cached per market).
+
+    Returns ``(rows, start, degree, span, lonely)``: ``rows`` ascending, shape (n_b,);
+    ``start[i]`` is the position of buyer ``rows[i]``'s first edge in the network's edge arrays;
+    ``span`` is ``slice(rows[0], rows[-1] + 1)`` when the rows are one run of consecutive
+    population rows (then column reads are slices, not gathers), else None. With a span, the
+    buyers without partners stay in ``rows`` (so that it remains a run) and ``lonely`` lists
+    their positions, to be masked; otherwise ``rows`` holds only buyers with partners and
+    ``lonely`` is None.
+    """
+    pop, net = state.population, state.network
+    entry = state.cache.get(_CACHE_KEY)
+    if entry is not None and entry[0] is net and entry[1] is pop:
+        return entry[2]
+    ptr = net.buyer_ptr  # shape: (n + 1,)
+    degree = ptr[1:] - ptr[:-1]  # shape: (n,) trading partners of each buyer
+    rows = np.flatnonzero(pop.role == BUYER)  # shape: (n_b,)
+    span = lonely = None
+    if rows.size and int(rows[-1] - rows[0]) == rows.size - 1:
+        span = slice(int(rows[0]), int(rows[-1]) + 1)
+        lonely = np.flatnonzero(degree[rows] == 0)  # shape: (n_lonely,)
+    else:
+        rows = rows[degree[rows] > 0]
+    start = np.minimum(ptr[rows], max(net.n_edges - 1, 0))  # lonely rows: any valid position
+    table = (rows, start, degree[rows], span, lonely)
+    state.cache[_CACHE_KEY] = (net, pop, table)
+    return table
+
+
 def propensity_round(
     state: MarketState,
     rng: np.random.Generator,
@@ -59,78 +94,137 @@ def propensity_round(
 ) -> Trades:
     """One round of propensity matching over whole arrays (see module docstring).
 
-    Random draws, in this order: a permutation of the active buyers (their turns in the round),
-    one neighbour pick per meeting, one uniform per meeting (trade or not; skipped when
-    ``threshold`` is set), then one price per successful meeting.
+    Random draws, in this order: one uniform ``u`` per meeting (buyers in row order, then
+    meeting number), a permutation of the buyers whose meetings produced at least one agreement
+    (their turns in the round), then one price per accepted trade (per agreement, before the
+    acceptance, when some buyer has a budget). The trades are listed by buyer row (then meeting
+    number), not in turn order.
+
+    One uniform serves both choices of a meeting: with ``d`` partners, ``floor(u d)`` picks the
+    neighbour and the fractional part ``u d - floor(u d)``, again uniform on [0, 1) and independent
+    of the pick, decides the trade (the same reuse as in the alias method, Walker 1977). Only the
+    buyers with an agreement need a turn: the turns of the others change nothing, and a uniformly
+    random order restricted to a subset is a uniformly random order of that subset.
+
+    References
+    ----------
+    A. J. Walker, "An efficient method for generating discrete random variables with general
+    distributions", ACM Trans. Math. Softw. 3:253-256 (1977): one uniform split into an index and
+    a fractional part.
     """
     pop, net = state.population, state.network
-    remaining = state.remaining
-    ptr = net.buyer_ptr  # shape: (n + 1,)
-    degree = ptr[1:] - ptr[:-1]  # shape: (n,) trading partners of each buyer
-    active = np.flatnonzero((pop.role == BUYER) & (remaining > 0) & (degree > 0))  # (n_active,)
-    if active.size == 0 or meetings == 0:
+    if meetings == 0:
         return Trades.empty()
-    active = active[rng.permutation(active.size)]  # the buyers' turns in this round
-    # Candidates are laid out in turn order (buyer's turn, then meeting number), so the
-    # acceptance order is simply the position.
-    b = active if meetings == 1 else np.repeat(active, meetings)  # shape: (k,)
-    key = np.arange(b.size)  # shape: (k,)
-    deg_b = degree[b]  # shape: (k,)
-    offset = (rng.random(b.size) * deg_b).astype(np.int64)
-    np.minimum(offset, deg_b - 1, out=offset)  # guard the u * d == d rounding case
-    s = net.seller[ptr[b] + offset]  # shape: (k,) the seller met
-
-    if pop.curve == "normal":
-        # Bromiley 2003, inline and in place: this is the hot path.
-        mu_b, mu_s = pop.mu[b], pop.mu[s]  # shape: (k,)
-        var_b = pop.sigma[b]
-        var_b *= var_b
-        var_s = pop.sigma[s]
-        var_s *= var_s
-        var_sum = var_b + var_s  # shape: (k,)
-        peak = mu_b - mu_s
-        peak *= peak
-        peak /= var_sum
-        peak *= -0.5
-        np.exp(peak, out=peak)
-        peak *= pop.activity[b]
-        peak *= pop.activity[s]  # shape: (k,) joint peak a_b a_s exp(-gap^2 / (2 var_sum))
-        if threshold is None:
-            traded = rng.random(b.size) < peak  # shape: (k,) the pair agreed to trade
-        else:
-            traded = peak >= threshold
-        hit = np.flatnonzero(traded)
-        b, s, key = b[hit], s[hit], key[hit]
-        vb, vs, vsum = var_b[hit], var_s[hit], var_sum[hit]  # shape: (n_hit,)
-        mean = (mu_b[hit] * vs + mu_s[hit] * vb) / vsum
-        sd = np.sqrt(vb * vs / vsum)
-        price = mean + sd * rng.standard_normal(hit.size)  # shape: (n_hit,)
-    else:
-        joint = _joint_of(pop, b, s, grid_points)
-        peak = np.asarray(joint.peak, dtype=float).reshape(-1)
-        traded = rng.random(b.size) < peak if threshold is None else peak >= threshold
-        hit = np.flatnonzero(traded)
-        b, s, key = b[hit], s[hit], key[hit]
-        if hit.size == 0:
+    if net.n_edges == 0:
+        return Trades.empty()
+    rows, start, deg, own, lonely = _buyer_table(state)
+    live = state.remaining[rows if own is None else own] > 0  # shape: (n_b,) units left
+    if own is None or meetings > 1 or not live.all():
+        keep = np.flatnonzero(live & (deg > 0))  # gather the buyers who can meet someone
+        rows, start, deg, own, lonely = rows[keep], start[keep], deg[keep], None, None
+        if rows.size == 0:
             return Trades.empty()
-        price = np.asarray(
-            _joint_of(pop, b, s, grid_points).sample_price(rng), dtype=float
-        ).reshape(-1)
+        if meetings > 1:
+            rows, start, deg = (np.repeat(x, meetings) for x in (rows, start, deg))
+        own = rows
+    # Meetings in row order (buyer, then meeting number): column reads walk memory forward.
+    u = rng.random(rows.size)  # shape: (k,) on [0, 1 - 2^-53]
+    u *= deg  # rounded u d stays below d (d < 2^53): no pick can run past the buyer's edges
+    pick = u.astype(np.int64)  # shape: (k,) floor(u d): which neighbour
+    u -= pick  # shape: (k,) fractional part: uniform on [0, 1), decides the trade
+    edge = start + pick  # shape: (k,) position of the meeting's edge
+    s = net.seller[edge]  # shape: (k,) the seller met (any seller for a lonely buyer: masked)
 
-    if b.size == 0:
+    normal = pop.curve == "normal"
+    if normal:
+        # Bromiley 2003, inline and in place: this is the hot path. With one width for every
+        # trader (the default, and kept by drift rules that leave widths alone) the variances
+        # are scalars and broadcast.
+        sigma = pop.sigma
+        one_width = bool(sigma.min() == sigma.max())
+        var_b = float(sigma[0]) ** 2 if one_width else np.square(sigma[own])  # scalar or (k,)
+        var_s = var_b if one_width else np.square(sigma[s])
+        var_sum = var_b + var_s
+        mu_b, mu_s = pop.mu[own], pop.mu[s]  # shape: (k,)
+        peak = mu_b - mu_s
+        np.square(peak, out=peak)
+        peak *= -0.5 / var_sum
+        np.exp(peak, out=peak)
+        if pop.activity.min() < 1.0:  # heights of 1 (the default) need no product
+            peak *= pop.activity[own]
+            peak *= pop.activity[s]  # shape: (k,) joint peak a_b a_s exp(-gap^2 / (2 var_sum))
+    else:
+        peak = np.array(_joint_of(pop, rows, s, grid_points).peak, dtype=float).reshape(-1)
+    if lonely is not None and lonely.size:
+        peak[lonely] = 0.0  # no partner, no meeting
+    traded = u < peak if threshold is None else peak >= threshold  # shape: (k,) agreed
+    hit = np.flatnonzero(traded)  # shape: (n_hit,) ascending
+    if hit.size == 0:
         return Trades.empty()
+    turn = _turn_keys(hit, rows, meetings, rng)  # shape: (n_hit,)
+
+    def prices(at: np.ndarray) -> np.ndarray:
+        """One price per agreed meeting ``at`` (positions), drawn from its joint curve."""
+        if not normal:
+            joint = _joint_of(pop, rows[at], s[at], grid_points)
+            return np.asarray(joint.sample_price(rng), dtype=float).reshape(-1)
+        if one_width:
+            price = mu_b[at] + mu_s[at]
+            price *= 0.5  # shape: (n_at,) joint mean
+            sd = math.sqrt(0.5 * var_b)
+        else:
+            vb, vs, vsum = var_b[at], var_s[at], var_sum[at]  # shape: (n_at,)
+            price = mu_b[at] * vs
+            price += mu_s[at] * vb
+            price /= vsum  # shape: (n_at,) joint mean
+            sd = vb * vs
+            sd /= vsum
+            np.sqrt(sd, out=sd)  # shape: (n_at,) joint sd
+        noise = rng.standard_normal(at.size)  # shape: (n_at,)
+        noise *= sd
+        price += noise
+        return price
+
+    b = rows[hit]  # shape: (n_hit,) by buyer row
     cash = pop.cash
-    budgets = np.isfinite(cash[b]).any()
+    budgets = bool(np.isfinite(cash[b]).any())
+    # Without budgets acceptance does not depend on the price: draw prices for accepted
+    # meetings only. With budgets every agreement needs its price first.
+    price = prices(hit) if budgets else None
     accepted = greedy_accept(
-        key,
+        turn,
         b,
-        s,
-        remaining,
-        remaining,
-        price=price if budgets else None,
+        s[hit],
+        state.remaining,
+        state.remaining,
+        price=price,
         cash=cash if budgets else None,
+        unique_buyers=meetings == 1,
+        unique_order=meetings == 1,
     )
-    return Trades(b[accepted], s[accepted], price[accepted], np.ones(int(accepted.sum())))
+    take = hit if accepted.all() else hit[accepted]  # shape: (n_trades,)
+    price = prices(take) if price is None else price[accepted]
+    ones = np.ones(take.size, dtype=np.int64)
+    return Trades(rows[take], s[take], price, ones, edge[take])
+
+
+def _turn_keys(
+    hit: np.ndarray, rows: np.ndarray, meetings: int, rng: np.random.Generator
+) -> np.ndarray:
+    """Turn of each agreed meeting (positions ``hit``, ascending) in the round, as an int key.
+
+    The buyers with an agreement take their turns in a random order (one permutation draw);
+    a buyer's meetings share its key, and equal keys go in position order, which is meeting
+    order.
+    """
+    if meetings == 1:
+        return rng.permutation(hit.size)  # one meeting per buyer: every hit is a buyer
+    b = rows[hit]  # shape: (n_hit,)
+    first = np.empty(hit.size, dtype=bool)
+    first[0] = True
+    np.not_equal(b[1:], b[:-1], out=first[1:])  # shape: (n_hit,) a buyer's first agreement
+    run = np.cumsum(first) - 1  # shape: (n_hit,) which buyer (run) each agreement belongs to
+    return rng.permutation(int(run[-1]) + 1)[run]
 
 
 def pair_meeting(pop: Population, i: int, j: int, grid_points: int = 257):

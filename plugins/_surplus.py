@@ -158,4 +158,4 @@ def gini(x) -> float:
     if n == 0 or total <= 0:
         return float("nan")
     rank = np.arange(1, n + 1)
-    return float(2.0 * np.dot(rank, arr) / (n * total) - (n + 1.0) / n)
+    return float(2.0 * (rank * arr).sum() / (n * total) - (n + 1.0) / n)

@@ -84,13 +84,49 @@ def _check_langevin(owner: str, eta, noise, dt) -> None:
 
 
 # -- the exact step ------------------------------------------------------------------------------
-def _phi(x: np.ndarray) -> np.ndarray:
-    """``(1 - exp(-x)) / x`` with its limit 1 at ``x = 0``, accurate for small ``|x|``."""
-    x = np.asarray(x, dtype=float)
-    tiny = np.abs(x) < 1e-8  # shape: like x
+def _ou_coefficients(
+    stiffness: np.ndarray, eta: float, noise: float, dt: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """``(decay, gain, sd)`` of the exact step ``mu' = mu decay + offset gain + sd xi``.
+
+    With ``x = k dt / eta``: ``decay = exp(-x)``, ``gain = (dt / eta) phi(x)`` and
+    ``sd = sqrt(2 D dt phi(2 x))`` (None when ``D = 0``), with ``phi(2 x)`` from ``phi(x)``
+    through ``phi(2 x) = phi(x) (1 + exp(-x)) / 2`` (since
+    ``1 - e^(-2x) = (1 - e^(-x)) (1 + e^(-x))``).
+    """
+    x = np.asarray(stiffness, dtype=float) * (dt / eta)  # shape: (n,)
+    tiny = np.abs(x) < 1e-8  # shape: (n,) phi by its series: 1 - x / 2
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        ratio = -np.expm1(-x) / x
-    return np.where(tiny, 1.0 - 0.5 * x, ratio)
+        em1 = np.expm1(-x)  # shape: (n,) exp(-x) - 1
+        phi = em1 / x
+        np.negative(phi, out=phi)  # shape: (n,) phi(x) = (1 - exp(-x)) / x
+    if tiny.any():
+        phi[tiny] = 1.0 - 0.5 * x[tiny]
+    decay = np.exp(-x)  # shape: (n,) (not 1 + em1: that loses digits where exp(-x) is small)
+    gain = phi * (dt / eta)  # shape: (n,)
+    sd = None
+    if noise != 0:
+        sd = decay + 1.0
+        sd *= phi
+        sd *= noise * dt  # shape: (n,) 2 D dt phi(2 x) = D dt phi(x) (1 + exp(-x))
+        np.sqrt(sd, out=sd)
+    if x.ndim == 1 and x.size and x.min() == x.max():  # one stiffness for all: scalars
+        return float(decay[0]), float(gain[0]), None if sd is None else float(sd[0])
+    return decay, gain, sd
+
+
+def _ou_apply(mu, offset, coefficients, rng) -> np.ndarray:
+    """``mu decay + offset gain + sd xi`` (one standard normal per trader when sd is set)."""
+    decay, gain, sd = coefficients
+    out = np.multiply(mu, decay)  # shape: (n,)
+    out += np.multiply(offset, gain)
+    if sd is not None:
+        if rng is None:
+            raise ValueError("ou_step: rng is required when noise > 0")
+        xi = rng.standard_normal(out.shape)  # shape: (n,)
+        xi *= sd
+        out += xi
+    return out
 
 
 def ou_step(
@@ -134,14 +170,11 @@ def ou_step(
     Gillespie, Phys. Rev. E 54:2084 (1996) (the exact update).
     """
     mu = np.asarray(mu, dtype=float)
-    x = np.asarray(stiffness, dtype=float) * (dt / eta)  # shape: (n,)
-    mean = mu * np.exp(-x) + np.asarray(offset, dtype=float) * (dt / eta) * _phi(x)  # shape: (n,)
-    if noise == 0:
-        return np.array(np.broadcast_to(mean, mu.shape), dtype=float)
-    if rng is None:
+    if noise != 0 and rng is None:
         raise ValueError("ou_step: rng is required when noise > 0")
-    sd = np.sqrt(2.0 * noise * dt * _phi(2.0 * x))  # shape: (n,)
-    return mean + sd * rng.standard_normal(mu.shape)
+    stiffness = np.broadcast_to(np.asarray(stiffness, dtype=float), mu.shape)
+    coefficients = _ou_coefficients(stiffness, float(eta), float(noise), float(dt))
+    return _ou_apply(mu, np.asarray(offset, dtype=float), coefficients, rng)
 
 
 # -- who could trade -----------------------------------------------------------------------------
@@ -261,7 +294,9 @@ class AnchorDrift(_ForceRule):
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """``stiffness = strength * gamma / sigma^2``, ``offset = stiffness * value``."""
         pop = state.population
-        stiffness = self.strength * pop.gamma / pop.sigma**2  # shape: (n,)
+        stiffness = pop.gamma / np.square(pop.sigma)  # shape: (n,)
+        if self.strength != 1:
+            stiffness *= self.strength
         return stiffness, stiffness * pop.value
 
 
@@ -432,6 +467,16 @@ class WidthAdaptation(_ForceRule):
         return DriftSum(rules=(self,)).apply(state, outcome, rng)
 
 
+#: Key of the per-market cache entry holding the last exact-step coefficients.
+_OU_CACHE_KEY = "drift.ou_coefficients"
+
+
+def _column(values, n: int) -> np.ndarray:
+    """``values`` as a float array of shape (n,) (broadcast and copied if it is not one)."""
+    out = np.asarray(values, dtype=float)
+    return out if out.shape == (n,) else np.array(np.broadcast_to(out, (n,)), dtype=float)
+
+
 class DriftSum:
     """Several force rules acting at once, stepped exactly as one Ornstein-Uhlenbeck process.
 
@@ -484,6 +529,9 @@ class DriftSum:
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """Total ``(stiffness, offset)`` of the rules, shape (n,) each."""
         n = len(state.population)
+        if isinstance(self.rules, list | tuple) and len(self.rules) == 1:  # no sum to build
+            k, c = self.rules[0].terms(state, outcome)
+            return _column(k, n), _column(c, n)
         stiffness = np.zeros(n)  # shape: (n,)
         offset = np.zeros(n)  # shape: (n,)
         for rule in self.rules:
@@ -509,16 +557,24 @@ class DriftSum:
         self.check()
         pop = state.population
         stiffness, offset = self.terms(state, outcome)
-        mu = ou_step(
-            pop.mu,
-            stiffness,
-            offset,
-            eta=float(self.eta),
-            noise=float(self.noise),
-            dt=float(self.dt),
-            rng=rng,
-        )
-        sigma = np.array(self.update_sigma(state, outcome, pop.sigma.copy()), dtype=float)
+        params = (float(self.eta), float(self.noise), float(self.dt))
+        # The step's coefficients depend only on the stiffness, which stays the same from round
+        # to round unless a rule moves it (e.g. widths adapting): reuse them while it does.
+        cached = state.cache.get(_OU_CACHE_KEY)
+        if (
+            cached is not None
+            and cached[0] == params
+            and cached[1].shape == stiffness.shape
+            and np.array_equal(cached[1], stiffness)
+        ):
+            coefficients = cached[2]
+        else:
+            coefficients = _ou_coefficients(stiffness, *params)
+            state.cache[_OU_CACHE_KEY] = (params, np.array(stiffness, copy=True), coefficients)
+        mu = _ou_apply(pop.mu, offset, coefficients, rng)
+        sigma = np.asarray(self.update_sigma(state, outcome, pop.sigma.copy()), dtype=float)
+        if sigma is pop.sigma:  # a rule handed back the population's own column
+            sigma = sigma.copy()
         return mu, sigma
 
     def __repr__(self) -> str:

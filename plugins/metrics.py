@@ -210,7 +210,7 @@ class VolumeWeightedPrice:
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``sum(p q) / sum(q)``."""
         price, q = _weighted_prices(outcome)
-        return float(np.dot(price, q) / q.sum()) if q.sum() > 0 else _NAN
+        return float((price * q).sum() / q.sum()) if q.sum() > 0 else _NAN
 
 
 class PriceDispersion:
@@ -228,8 +228,8 @@ class PriceDispersion:
         price, q = _weighted_prices(outcome)
         if q.sum() <= 0:
             return _NAN
-        mean = np.dot(price, q) / q.sum()
-        return float(np.sqrt(np.dot(q, (price - mean) ** 2) / q.sum()))
+        mean = (price * q).sum() / q.sum()
+        return float(np.sqrt((q * (price - mean) ** 2).sum() / q.sum()))
 
 
 class PreferenceGap:
@@ -397,7 +397,7 @@ class SmithAlpha:
         price, q = _weighted_prices(outcome)
         if q.sum() <= 0 or not np.isfinite(p0) or p0 <= 0:
             return _NAN
-        return float(100.0 * np.sqrt(np.dot(q, (price - p0) ** 2) / q.sum()) / p0)
+        return float(100.0 * np.sqrt((q * (price - p0) ** 2).sum() / q.sum()) / p0)
 
 
 class EntropicEnergy:

@@ -28,12 +28,18 @@ class Trades:
         Price per unit (price units, finite).
     quantity : ndarray of int64, shape (n_trades,)
         Units traded (>= 1).
+    edge : ndarray of int64, shape (n_trades,), optional
+        A hint for the invariant check: the position of each trade's edge in the network's edge
+        arrays (``network.buyer[edge] == buyer`` and ``network.seller[edge] == seller``). The
+        check verifies the hint in O(1) per trade instead of searching the edge list, and
+        searches where the hint is missing or wrong, so a hint never makes an invalid trade pass.
     """
 
     buyer: np.ndarray
     seller: np.ndarray
     price: np.ndarray
     quantity: np.ndarray
+    edge: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         self.buyer = np.asarray(self.buyer, dtype=np.int64).reshape(-1)
@@ -47,6 +53,10 @@ class Trades:
                 f"(buyer={n}, seller={self.seller.size}, price={self.price.size}, "
                 f"quantity={self.quantity.size})"
             )
+        if self.edge is not None:
+            self.edge = np.asarray(self.edge, dtype=np.int64).reshape(-1)
+            if self.edge.shape[0] != n:
+                raise ValueError(f"Trades edge hint has {self.edge.size} rows, expected {n}")
 
     @classmethod
     def empty(cls) -> Trades:
@@ -59,11 +69,13 @@ class Trades:
         """Stack several batches in order."""
         if not parts:
             return cls.empty()
+        hinted = all(p.edge is not None for p in parts)
         return cls(
             np.concatenate([p.buyer for p in parts]),
             np.concatenate([p.seller for p in parts]),
             np.concatenate([p.price for p in parts]),
             np.concatenate([p.quantity for p in parts]),
+            np.concatenate([p.edge for p in parts]) if hinted else None,
         )
 
     def __len__(self) -> int:
@@ -151,12 +163,47 @@ class TradingNetwork:
         return self.buyer * np.int64(self.n) + self.seller
 
     def has_edge(self, buyer: np.ndarray, seller: np.ndarray) -> np.ndarray:
-        """Boolean mask: True where a (buyer, seller) pair shares an edge."""
-        key = np.asarray(buyer, dtype=np.int64) * np.int64(self.n) + np.asarray(seller, np.int64)
-        if self.n_edges == 0:
-            return np.zeros(key.shape, dtype=bool)
-        pos = np.minimum(np.searchsorted(self.edge_key, key), self.n_edges - 1)
-        return self.edge_key[pos] == key
+        """Boolean mask: True where a (buyer, seller) pair shares an edge.
+
+        Rows outside ``0..n-1`` have no edge. Searches each buyer's own run of sellers (a
+        vectorised binary search over ``seller[buyer_ptr[b]:buyer_ptr[b + 1]]``, a few steps
+        for a sparse network) rather than the whole edge list.
+        """
+        b, s = np.broadcast_arrays(
+            np.asarray(buyer, dtype=np.int64), np.asarray(seller, dtype=np.int64)
+        )
+        shape = b.shape
+        b, s = b.reshape(-1), s.reshape(-1)
+        if self.n_edges == 0 or b.size == 0:
+            return np.zeros(shape, dtype=bool)
+        n = self.n
+        inside = (b >= 0) & (b < n) & (s >= 0) & (s < n)  # shape: (m,)
+        if not inside.all():
+            out = np.zeros(b.size, dtype=bool)
+            out[inside] = self.has_edge(b[inside], s[inside])
+            return out.reshape(shape)
+        ptr = self.buyer_ptr
+        base = ptr[b]  # shape: (m,) start of the buyer's sellers
+        end = ptr[b + 1]
+        size = end - base  # shape: (m,) sellers left to search
+        seller = self._seller_padded
+        for _ in range(int(self._max_buyer_degree).bit_length()):
+            half = size >> 1
+            mid = base + half  # shape: (m,)
+            right = seller[mid] < s  # shape: (m,) the target lies after mid
+            right &= size > 0
+            base += right * (half + 1)
+            size = np.where(right, size - half - 1, half)
+        return ((base < end) & (seller[base] == s)).reshape(shape)
+
+    @cached_property
+    def _seller_padded(self) -> np.ndarray:
+        """``seller`` with one sentinel after the end (searches may read one past a run)."""
+        return np.append(self.seller, np.int64(-1))
+
+    @cached_property
+    def _max_buyer_degree(self) -> int:
+        return int(np.diff(self.buyer_ptr).max()) if self.n_edges else 0
 
     @cached_property
     def buyer_ptr(self) -> np.ndarray:
@@ -253,14 +300,34 @@ class RoundOutcome:
 
     @classmethod
     def from_trades(cls, trades: Trades, n: int) -> RoundOutcome:
-        """Tally a batch of trades per trader."""
+        """Tally a batch of trades per trader.
+
+        ``traded`` and ``mean_price`` are tallied when first read (two passes over ``n``
+        traders that a round whose drift rule and metrics read only ``trades`` never pays).
+        """
+        out = cls.__new__(cls)
+        out.trades = trades
+        out._n = int(n)
+        return out
+
+    def __getattr__(self, name: str):
+        # Only called when normal lookup fails: a lazily tallied field not read yet.
+        if name in ("traded", "mean_price") and "_n" in self.__dict__:
+            self._tally()
+            return self.__dict__[name]
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
+
+    def _tally(self) -> None:
+        trades, n = self.trades, self.__dict__.pop("_n")
         q = trades.quantity.astype(float)
         traded = np.bincount(trades.buyer, weights=q, minlength=n) + np.bincount(
             trades.seller, weights=q, minlength=n
         )
-        paid = np.bincount(trades.buyer, weights=q * trades.price, minlength=n) + np.bincount(
-            trades.seller, weights=q * trades.price, minlength=n
+        pay = q * trades.price  # shape: (n_trades,)
+        paid = np.bincount(trades.buyer, weights=pay, minlength=n) + np.bincount(
+            trades.seller, weights=pay, minlength=n
         )
         with np.errstate(invalid="ignore", divide="ignore"):
             mean_price = np.where(traded > 0, paid / traded, np.nan)
-        return cls(trades=trades, traded=traded.astype(np.int64), mean_price=mean_price)
+        self.traded = traded.astype(np.int64)
+        self.mean_price = mean_price
