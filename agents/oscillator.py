@@ -15,7 +15,7 @@ References
 ----------
 .. [1] D. J. Griffiths, *Introduction to Quantum Mechanics*, section 2.3.2 (the algebraic and
    analytic harmonic oscillator: ``psi_n``, ``E_n = (n + 1/2) hbar omega``).
-.. [2] R. P. Feynman, *Statistical Mechanics: A Set of Lectures* (1972), eq. 2.84 (the thermal
+.. [2] R. P. Feynman, *Statistical Mechanics* (Benjamin, 1972), eq. 2.84 (the thermal
    density matrix of the oscillator: a normal law with variance
    ``hbar / (2 m omega) coth(hbar omega / (2 k T))``).
 """
