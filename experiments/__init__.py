@@ -9,7 +9,7 @@ Examples
 >>> load(store.path).runs.groupby("arm")["efficiency"].mean()  # doctest: +SKIP
 """
 
-from importlib import import_module
+from propensim.agents._lazy import lazy_exports
 
 _NAMES = {
     "RunPlan": "plan",
@@ -37,12 +37,4 @@ _NAMES = {
 
 __all__ = sorted(_NAMES)
 
-
-def __getattr__(name: str):
-    if name in _NAMES:
-        return getattr(import_module(f"{__name__}.{_NAMES[name]}"), name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-def __dir__():
-    return __all__
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)

@@ -3,7 +3,7 @@
 Imports the agents and plugins layers. Names load on first use (importing mesa costs ~1 s).
 """
 
-from importlib import import_module
+from propensim.agents._lazy import lazy_exports
 
 _NAMES = {
     "Market": "model",
@@ -15,7 +15,7 @@ _NAMES = {
     "STREAMS": "engine",
     "DEFAULT_METRICS": "engine",
 }
-_FROM_PLUGINS = {
+_NAMES |= {
     "max_surplus": "propensim.plugins.metrics",
     "competitive_equilibrium": "propensim.plugins.metrics",
     "from_graph": "propensim.plugins.networks",
@@ -24,16 +24,6 @@ _FROM_PLUGINS = {
     "Trades": "propensim.plugins.types",
 }
 
-__all__ = sorted([*_NAMES, *_FROM_PLUGINS])
+__all__ = sorted(_NAMES)
 
-
-def __getattr__(name: str):
-    if name in _NAMES:
-        return getattr(import_module(f"{__name__}.{_NAMES[name]}"), name)
-    if name in _FROM_PLUGINS:
-        return getattr(import_module(_FROM_PLUGINS[name]), name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-def __dir__():
-    return __all__
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)

@@ -4,7 +4,7 @@ Imports only the agents layer. Built-in plugins register through the same entry-
 third party's (see :mod:`propensim.plugins.registry`). Names load on first use.
 """
 
-from importlib import import_module
+from propensim.agents._lazy import lazy_exports
 
 _NAMES = {
     "Trades": "types",
@@ -29,12 +29,4 @@ _NAMES = {
 
 __all__ = sorted(_NAMES)
 
-
-def __getattr__(name: str):
-    if name in _NAMES:
-        return getattr(import_module(f"{__name__}.{_NAMES[name]}"), name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-def __dir__():
-    return __all__
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)
