@@ -171,9 +171,8 @@ class MarketEngine:
         if getattr(self.clearing, "per_agent", False):
             from propensim.plugins.clearing import run_per_agent
 
-            remaining = state.remaining.copy()
+            # run_per_agent shrinks a private copy of remaining; state stays as it was
             trades = run_per_agent(self.clearing, state, self._rng_clearing, self.traders)
-            state.remaining = remaining
         else:
             trades = self.clearing.clear(state, self._rng_clearing)
         check_trades(state, trades)
