@@ -61,6 +61,9 @@ from propensim.experiments.store import Store, plans_fingerprint
 
 #: Aim for tasks of at least this much work (seconds): amortises ~3.5 ms of task overhead.
 TARGET_TASK_SECONDS = 0.1
+#: The same for Dask, whose scheduler and client share the machine's cores with the workers on a
+#: local cluster: fewer, larger tasks leave the workers more of them.
+DASK_TARGET_TASK_SECONDS = 0.5
 #: Stop the sweep if this many first finished runs all failed with one exception type.
 EARLY_FAILURES = 5
 #: Environment variables that pin BLAS/OpenMP pools of worker processes to one thread.
@@ -411,9 +414,10 @@ def _backend(workers, scheduler, dask_local, n_tasks: int):
 class _Batcher:
     """Batch sizes from the observed cost per run (median of the runs seen so far)."""
 
-    def __init__(self, n_workers: int, inline: bool) -> None:
+    def __init__(self, n_workers: int, inline: bool, target: float = TARGET_TASK_SECONDS) -> None:
         self.n_workers = n_workers
         self.inline = inline
+        self.target = target
         self.durations: deque[float] = deque(maxlen=256)
 
     def observe(self, results: Sequence[RunResult]) -> None:
@@ -423,7 +427,7 @@ class _Batcher:
         if self.inline or not self.durations:
             return 1  # in-process there is no task overhead; elsewhere the first tasks are pilots
         cost = max(sorted(self.durations)[len(self.durations) // 2], 1e-6)
-        wanted = math.ceil(TARGET_TASK_SECONDS / cost)
+        wanted = math.ceil(self.target / cost)
         # Leave at least two tasks per worker for the rest of the sweep, so the end is balanced.
         balance = max(1, math.ceil(remaining / (2 * self.n_workers)))
         return max(1, min(wanted, balance, 10_000))
@@ -485,7 +489,8 @@ def _sweep(
 ) -> None:
     queue = deque(todo)
     inflight: dict[Any, list[RunPlan]] = {}
-    batcher = _Batcher(backend.n_workers, inline=isinstance(backend, _InProcess))
+    target = DASK_TARGET_TASK_SECONDS if isinstance(backend, _Dask) else TARGET_TASK_SECONDS
+    batcher = _Batcher(backend.n_workers, inline=isinstance(backend, _InProcess), target=target)
     max_inflight = 1 if isinstance(backend, _InProcess) else 2 * backend.n_workers
     early: list[RunResult] = []
     last_flush = time.monotonic()
