@@ -640,9 +640,14 @@ class Results:
         return _read_table(fpath).to_pandas()
 
     @cached_property
+    def _stored_runs(self):
+        # runs.parquet as stored, read once: the runs table and the part tables' order use it
+        return self._table("runs.parquet")
+
+    @cached_property
     def runs(self):
         """Runs table joined with timings (``duration_s``, ``worker``)."""
-        runs = self._table("runs.parquet")
+        runs = self._stored_runs
         timings = self.timings
         if len(runs) and len(timings):
             runs = runs.merge(
@@ -669,7 +674,7 @@ class Results:
             return pd.DataFrame()
         tables = [_read_table(p) for p in parts]
         frame = pa.concat_tables(tables, promote_options="default").to_pandas()
-        runs = self._table("runs.parquet")
+        runs = self._stored_runs
         if len(runs):
             order = runs.groupby("run_id", sort=False)["index"].min()
             key = frame["run_id"].map(order)
