@@ -26,7 +26,7 @@ from propensim.agents.population import (
     Population,
     build_population,
 )
-from propensim.plugins import registry
+from propensim.plugins import _kernels, registry
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
 #: Named random streams of one run, in spawn order. New streams are only ever appended.
@@ -161,6 +161,7 @@ class MarketEngine:
         from propensim.plugins._invariants import apply_trades, check_trades
 
         pop, state = self.population, self.state
+        _kernels.count_work(len(pop))
         if self.replenish:
             np.copyto(pop.stock, self._initial_stock)
             np.copyto(pop.cash, self._initial_cash)

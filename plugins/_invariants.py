@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER, Population
+from propensim.plugins import _kernels
 from propensim.plugins.types import MarketState, Trades
 
 #: Relative slack on budget checks: sums of float prices may differ from cash by rounding.
@@ -156,6 +157,8 @@ def apply_trades(population: Population, trades: Trades) -> None:
     (``np.add.at``), so its cost follows the number of trades, not of traders.
     """
     if len(trades) == 0:
+        return
+    if _kernels.apply_trades(trades, population.stock, population.cash):
         return
     q = trades.quantity
     np.add.at(population.stock, trades.buyer, q)

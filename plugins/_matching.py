@@ -22,6 +22,7 @@ import math
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER, Population
+from propensim.plugins import _kernels
 from propensim.plugins._greedy import greedy_accept
 from propensim.plugins.types import MarketState, Trades
 
@@ -127,40 +128,49 @@ def propensity_round(
         if meetings > 1:
             rows, start, deg = (np.repeat(x, meetings) for x in (rows, start, deg))
         own = rows
-    # Meetings in row order (buyer, then meeting number): column reads walk memory forward.
-    u = rng.random(rows.size)  # shape: (k,) on [0, 1 - 2^-53]
-    u *= deg  # rounded u d stays below d (d < 2^53): no pick can run past the buyer's edges
-    pick = u.astype(np.int64)  # shape: (k,) floor(u d): which neighbour
-    u -= pick  # shape: (k,) fractional part: uniform on [0, 1), decides the trade
-    edge = start + pick  # shape: (k,) position of the meeting's edge
-    s = net.seller[edge]  # shape: (k,) the seller met (any seller for a lonely buyer: masked)
-
     normal = pop.curve == "normal"
-    if normal:
-        # Bromiley 2003, inline and in place: this is the hot path. With one width for every
-        # trader (the default, and kept by drift rules that leave widths alone) the variances
-        # are scalars and broadcast.
-        sigma = pop.sigma
-        one_width = bool(sigma.min() == sigma.max())
-        var_b = float(sigma[0]) ** 2 if one_width else np.square(sigma[own])  # scalar or (k,)
-        var_s = var_b if one_width else np.square(sigma[s])
-        var_sum = var_b + var_s
-        mu_b, mu_s = pop.mu[own], pop.mu[s]  # shape: (k,)
-        peak = mu_b - mu_s
-        np.square(peak, out=peak)
-        peak *= -0.5 / var_sum
+    sigma = pop.sigma
+    one_width = normal and bool(sigma.min() == sigma.max())
+    # Bromiley 2003: the joint peak is exp(-gap^2 / (2 var_sum)) times the heights. With one
+    # width for every trader (the default, and kept by drift rules that leave widths alone) the
+    # variances are scalars and broadcast.
+    var_b = float(sigma[0]) ** 2 if one_width else None
+    fast = None
+    if one_width and isinstance(own, slice):  # one compiled pass when available: same numbers
+        fast = _kernels.meet_one_width(
+            rng, deg, start, net.seller, pop.mu, own.start, -0.5 / (var_b + var_b)
+        )
+    if fast is not None:
+        u, s, edge, peak = fast
         np.exp(peak, out=peak)
-        if pop.activity.min() < 1.0:  # heights of 1 (the default) need no product
-            peak *= pop.activity[own]
-            peak *= pop.activity[s]  # shape: (k,) joint peak a_b a_s exp(-gap^2 / (2 var_sum))
     else:
-        peak = np.array(_joint_of(pop, rows, s, grid_points).peak, dtype=float).reshape(-1)
+        # Meetings in row order (buyer, then meeting number): column reads walk memory forward.
+        u = rng.random(rows.size)  # shape: (k,) on [0, 1 - 2^-53]
+        u *= deg  # rounded u d stays below d (d < 2^53): no pick can run past the buyer's edges
+        pick = u.astype(np.int64)  # shape: (k,) floor(u d): which neighbour
+        u -= pick  # shape: (k,) fractional part: uniform on [0, 1), decides the trade
+        edge = start + pick  # shape: (k,) position of the meeting's edge
+        s = net.seller[edge]  # shape: (k,) the seller met (any seller for a lonely buyer: masked)
+        if normal:  # inline and in place: this is the hot path
+            var_b = var_b if one_width else np.square(sigma[own])  # scalar or (k,)
+            var_s = var_b if one_width else np.square(sigma[s])
+            var_sum = var_b + var_s
+            peak = pop.mu[own] - pop.mu[s]  # shape: (k,)
+            np.square(peak, out=peak)
+            peak *= -0.5 / var_sum
+            np.exp(peak, out=peak)
+        else:
+            peak = np.array(_joint_of(pop, rows, s, grid_points).peak, dtype=float).reshape(-1)
+    if normal and pop.activity.min() < 1.0:  # heights of 1 (the default) need no product
+        peak *= pop.activity[own]
+        peak *= pop.activity[s]  # shape: (k,) joint peak a_b a_s exp(-gap^2 / (2 var_sum))
     if lonely is not None and lonely.size:
         peak[lonely] = 0.0  # no partner, no meeting
     traded = u < peak if threshold is None else peak >= threshold  # shape: (k,) agreed
     hit = np.flatnonzero(traded)  # shape: (n_hit,) ascending
     if hit.size == 0:
         return Trades.empty()
+    n_rows = len(pop)
     turn = _turn_keys(hit, rows, meetings, rng)  # shape: (n_hit,)
 
     def prices(at: np.ndarray) -> np.ndarray:
@@ -168,14 +178,20 @@ def propensity_round(
         if not normal:
             joint = _joint_of(pop, rows[at], s[at], grid_points)
             return np.asarray(joint.sample_price(rng), dtype=float).reshape(-1)
+        if one_width:  # compiled when available: the same numbers in one pass
+            sd = math.sqrt(0.5 * var_b)
+            fast = _kernels.prices_one_width(rng, pop.mu, rows[at], s[at], sd, n_rows)
+            if fast is not None:
+                return fast
+        mu_b, mu_s = pop.mu[rows[at]], pop.mu[s[at]]  # shape: (n_at,)
         if one_width:
-            price = mu_b[at] + mu_s[at]
+            price = mu_b + mu_s
             price *= 0.5  # shape: (n_at,) joint mean
             sd = math.sqrt(0.5 * var_b)
         else:
             vb, vs, vsum = var_b[at], var_s[at], var_sum[at]  # shape: (n_at,)
-            price = mu_b[at] * vs
-            price += mu_s[at] * vb
+            price = mu_b * vs
+            price += mu_s * vb
             price /= vsum  # shape: (n_at,) joint mean
             sd = vb * vs
             sd /= vsum

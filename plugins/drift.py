@@ -45,6 +45,7 @@ from typing import ClassVar
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER
+from propensim.plugins import _kernels
 from propensim.plugins.types import MarketState, RoundOutcome
 
 __all__ = [
@@ -116,17 +117,38 @@ def _ou_coefficients(
 
 
 def _ou_apply(mu, offset, coefficients, rng) -> np.ndarray:
-    """``mu decay + offset gain + sd xi`` (one standard normal per trader when sd is set)."""
+    """``mu decay + offset gain + sd xi`` (one standard normal per trader when sd is set).
+
+    Large markets take this step in one compiled pass (:mod:`propensim.plugins._kernels`):
+    the same numbers, drawn from ``rng`` in the same order.
+    """
     decay, gain, sd = coefficients
+    if sd is not None and rng is not None and _fits_kernel(mu, offset, decay, gain, sd):
+        out = np.empty(mu.shape)  # shape: (n,)
+        if _kernels.ou_apply(mu, offset, decay, gain, sd, rng, out):  # same numbers, one pass
+            return out
     out = np.multiply(mu, decay)  # shape: (n,)
-    out += np.multiply(offset, gain)
+    tmp = np.empty_like(out)  # shape: (n,) for the temporaries
+    out += np.multiply(offset, gain, out=tmp)
     if sd is not None:
         if rng is None:
             raise ValueError("ou_step: rng is required when noise > 0")
-        xi = rng.standard_normal(out.shape)  # shape: (n,)
+        xi = rng.standard_normal(out=tmp)  # shape: (n,)
         xi *= sd
         out += xi
     return out
+
+
+def _fits_kernel(mu, *columns) -> bool:
+    """True if ``mu`` is one float column and each of ``columns`` a scalar or a column like it."""
+    if not (isinstance(mu, np.ndarray) and mu.ndim == 1 and mu.dtype == np.float64):
+        return False
+    return all(np.ndim(c) == 0 or np.shape(c) == mu.shape for c in columns)
+
+
+def _uniform(values: np.ndarray) -> bool:
+    """True if a non-empty column holds one value (then a term of it can be a scalar)."""
+    return bool(values.size) and bool(values.min() == values.max())
 
 
 def ou_step(
@@ -294,6 +316,13 @@ class AnchorDrift(_ForceRule):
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """``stiffness = strength * gamma / sigma^2``, ``offset = stiffness * value``."""
         pop = state.population
+        if _uniform(pop.gamma) and _uniform(pop.sigma):
+            # One stiffness for every trader (one width, one scale: the common case): a scalar,
+            # so the exact step's coefficients are scalars too. Same values as the array path.
+            k = np.float64(pop.gamma[0]) / np.square(np.float64(pop.sigma[0]))
+            if self.strength != 1:
+                k *= self.strength
+            return k, pop.value * k
         stiffness = pop.gamma / np.square(pop.sigma)  # shape: (n,)
         if self.strength != 1:
             stiffness *= self.strength
@@ -529,15 +558,35 @@ class DriftSum:
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """Total ``(stiffness, offset)`` of the rules, shape (n,) each."""
         n = len(state.population)
+        k, c = self._summed_terms(state, outcome)
+        return _column(k, n), _column(c, n)
+
+    def _summed_terms(self, state: MarketState, outcome: RoundOutcome):
+        """Total ``(stiffness, offset)``: float scalars where every rule gives one, else (n,).
+
+        A scalar stiffness (one for every trader) makes the exact step's coefficients scalars.
+        """
+        n = len(state.population)
         if isinstance(self.rules, list | tuple) and len(self.rules) == 1:  # no sum to build
             k, c = self.rules[0].terms(state, outcome)
-            return _column(k, n), _column(c, n)
-        stiffness = np.zeros(n)  # shape: (n,)
-        offset = np.zeros(n)  # shape: (n,)
+            k, c = np.asarray(k, dtype=float), np.asarray(c, dtype=float)
+            return (k if k.ndim == 0 else _column(k, n)), (c if c.ndim == 0 else _column(c, n))
+        stiffness = offset = np.float64(0.0)
         for rule in self.rules:
             k, c = rule.terms(state, outcome)
-            stiffness += k
-            offset += c
+            k, c = np.asarray(k, dtype=float), np.asarray(c, dtype=float)
+            if k.ndim and stiffness.ndim == 0:
+                stiffness = np.full(n, stiffness)  # shape: (n,)
+            if c.ndim and offset.ndim == 0:
+                offset = np.full(n, offset)  # shape: (n,)
+            if stiffness.ndim:
+                stiffness += k
+            else:
+                stiffness = stiffness + k
+            if offset.ndim:
+                offset += c
+            else:
+                offset = offset + c
         return stiffness, offset
 
     def update_sigma(
@@ -556,10 +605,12 @@ class DriftSum:
         """Return new ``(mu, sigma)``; the population is not modified."""
         self.check()
         pop = state.population
-        stiffness, offset = self.terms(state, outcome)
+        stiffness, offset = self._summed_terms(state, outcome)
         params = (float(self.eta), float(self.noise), float(self.dt))
         # The step's coefficients depend only on the stiffness, which stays the same from round
         # to round unless a rule moves it (e.g. widths adapting): reuse them while it does.
+        # A scalar stiffness (one for every trader) gives scalar coefficients, computed from
+        # a one-element column so that they equal the array path's bit for bit.
         cached = state.cache.get(_OU_CACHE_KEY)
         if (
             cached is not None
@@ -569,7 +620,8 @@ class DriftSum:
         ):
             coefficients = cached[2]
         else:
-            coefficients = _ou_coefficients(stiffness, *params)
+            column = stiffness.reshape(1) if stiffness.ndim == 0 else stiffness
+            coefficients = _ou_coefficients(column, *params)
             state.cache[_OU_CACHE_KEY] = (params, np.array(stiffness, copy=True), coefficients)
         mu = _ou_apply(pop.mu, offset, coefficients, rng)
         sigma = np.asarray(self.update_sigma(state, outcome, pop.sigma.copy()), dtype=float)

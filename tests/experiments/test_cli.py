@@ -63,12 +63,12 @@ def test_help_and_version_in_a_subprocess():
     assert res.returncode == 0 and res.stdout.strip() == f"propensim {version('propensim')}"
 
 
-def test_check_imports_neither_mesa_nor_dask():
+def test_check_imports_neither_mesa_nor_dask_nor_numba():
     code = (
         "import json, sys\n"
         "from propensim.experiments.cli import main\n"
         f"rc = main(['check', {str(DEMO)!r}])\n"
-        "print(json.dumps([rc, sorted(m for m in ('mesa', 'dask', 'distributed') "
+        "print(json.dumps([rc, sorted(m for m in ('mesa', 'dask', 'distributed', 'numba') "
         "if m in sys.modules)]))\n"
     )
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

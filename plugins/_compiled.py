@@ -1,0 +1,72 @@
+"""The numba-compiled loops behind :mod:`propensim.plugins._kernels` (imported only from there).
+
+Every function repeats, element by element and in the same order, the numpy operations it
+replaces, so the results are identical (tests/plugins/test_kernels.py checks them bit for bit).
+Compiled code is cached on disk (``cache=True``): the first use on a machine compiles, later
+processes load it.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+
+@numba.njit(cache=True, nogil=True)
+def ou_noise(mu, offset, off_step, decay, dec_step, gain, gain_step, sd, sd_step, rng, out):
+    """``out[i] = (mu[i] decay + offset gain) + xi_i sd``, ``xi_i`` the i-th standard normal.
+
+    Matches ``out = mu * decay; out += offset * gain; xi = rng.standard_normal(n); xi *= sd;
+    out += xi``. Each of ``offset``, ``decay``, ``gain``, ``sd`` is a column read at
+    ``i * step`` (step 0: one value for every row).
+    """
+    for i in range(mu.shape[0]):
+        drift = mu[i] * decay[i * dec_step] + offset[i * off_step] * gain[i * gain_step]
+        out[i] = drift + rng.standard_normal() * sd[i * sd_step]
+
+
+@numba.njit(cache=True, nogil=True)
+def apply_trades(b, s, q, p, stock, cash):
+    """``np.add.at(stock, b, q)``, ``np.subtract.at(stock, s, q)``, then with ``pay = q p``
+    ``np.subtract.at(cash, b, pay)`` and ``np.add.at(cash, s, pay)``, in that order."""
+    m = b.shape[0]
+    for i in range(m):
+        stock[b[i]] += q[i]
+    for i in range(m):
+        stock[s[i]] -= q[i]
+    for i in range(m):
+        cash[b[i]] -= q[i] * p[i]
+    for i in range(m):
+        cash[s[i]] += q[i] * p[i]
+
+
+@numba.njit(cache=True, nogil=True)
+def meet_one_width(rng, deg, start, seller, mu, first_row, scale, frac, partner, edge, arg):
+    """The meetings of buyers ``first_row + i`` (one each), up to the joint peak's exponent.
+
+    Matches, for normal curves of one width: ``u = rng.random(k); u *= deg;
+    pick = u.astype(int64); u -= pick; edge = start + pick; s = seller[edge];
+    arg = mu[first_row:first_row + k] - mu[s]; arg = arg * arg; arg *= scale``
+    (``frac`` receives ``u``, ``partner`` receives ``s``). The caller takes ``exp(arg)``.
+    """
+    for i in range(deg.shape[0]):
+        x = rng.random() * deg[i]
+        pick = np.int64(x)
+        e = start[i] + pick
+        s = seller[e]
+        gap = mu[first_row + i] - mu[s]
+        frac[i] = x - pick
+        partner[i] = s
+        edge[i] = e
+        arg[i] = gap * gap * scale
+
+
+@numba.njit(cache=True, nogil=True)
+def prices_one_width(rng, mu, buyer, seller, sd):
+    """``(mu[buyer] + mu[seller]) * 0.5 + rng.standard_normal(m) * sd``, in that order."""
+    m = buyer.shape[0]
+    out = np.empty(m)
+    for i in range(m):
+        mean = (mu[buyer[i]] + mu[seller[i]]) * 0.5
+        out[i] = mean + rng.standard_normal() * sd
+    return out

@@ -1,0 +1,244 @@
+"""The compiled loops give exactly the numbers of the numpy code they stand in for.
+
+Each kernel is checked bit for bit against its numpy twin (same values, and the generator left in
+the same state), then whole markets are run with the kernels forced on and off and compared
+column by column. The reference for the normal draws is NumPy itself:
+``Generator.standard_normal`` (ziggurat) and ``Generator.random``.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from propensim.markets.engine import build_market
+from propensim.plugins import _kernels
+from propensim.plugins.drift import _ou_apply
+from propensim.plugins.types import Trades
+
+pytest.importorskip("numba")
+
+
+@pytest.fixture
+def forced(monkeypatch):
+    """Kernels on at every size (as ``PROPENSIM_KERNELS=numba``)."""
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    assert _kernels.compiled(1) is not None
+
+
+@pytest.fixture
+def numpy_only(monkeypatch):
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numpy")
+    assert _kernels.compiled(10**9) is None
+
+
+def _same_state(g1: np.random.Generator, g2: np.random.Generator) -> bool:
+    return g1.bit_generator.state == g2.bit_generator.state
+
+
+@pytest.mark.parametrize(
+    "shape", ["scalars", "offset column", "all columns", "sd column", "scalar offset"]
+)
+def test_ou_step_matches_numpy_bit_for_bit(forced, shape):
+    rng = np.random.default_rng(11)
+    n = 5000
+    mu = rng.normal(100.0, 10.0, n)
+    offset = rng.normal(30.0, 5.0, n)
+    decay, gain, sd = 0.81, 0.17, 0.63
+    if shape == "all columns":
+        decay, gain, sd = rng.random(n), rng.random(n) * 2, rng.random(n)
+    elif shape == "sd column":
+        sd = rng.random(n)
+    elif shape == "scalar offset":
+        offset = np.float64(12.5)
+    elif shape == "scalars":
+        pass
+    g_fast, g_ref = np.random.default_rng(5), np.random.default_rng(5)
+    out = np.empty(n)
+    assert _kernels.ou_apply(mu, offset, decay, gain, sd, g_fast, out)
+    ref = mu * decay
+    ref += np.multiply(offset, gain)
+    xi = g_ref.standard_normal(n)
+    xi *= sd
+    ref += xi
+    assert np.array_equal(out, ref)
+    assert _same_state(g_fast, g_ref)
+
+
+def test_ou_apply_uses_the_kernel_and_agrees_with_numpy(monkeypatch):
+    rng = np.random.default_rng(2)
+    mu, offset = rng.normal(0, 1, 3000), rng.normal(0, 1, 3000)
+    coefficients = (0.5, 0.25, 1.5)
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numpy")
+    g1 = np.random.default_rng(9)
+    slow = _ou_apply(mu, offset, coefficients, g1)
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    g2 = np.random.default_rng(9)
+    fast = _ou_apply(mu, offset, coefficients, g2)
+    assert np.array_equal(fast, slow) and _same_state(g1, g2)
+
+
+def test_ou_kernel_refuses_columns_of_the_wrong_length(forced):
+    # The compiled loop has no bounds checks: the wrapper must stop a short column.
+    with pytest.raises(ValueError, match="as many rows as mu"):
+        _kernels.ou_apply(
+            np.zeros(10), np.zeros(9), 0.5, 0.5, 1.0, np.random.default_rng(0), np.empty(10)
+        )
+
+
+def test_apply_trades_matches_the_ufunc_at_sequence(forced):
+    rng = np.random.default_rng(3)
+    n, m = 400, 3000
+    buyer = rng.integers(0, 200, m)  # repeated rows: the order of the sums matters
+    seller = rng.integers(200, 400, m)
+    price = rng.normal(90, 20, m)
+    qty = rng.integers(1, 4, m)
+    trades = Trades(buyer, seller, price, qty)
+    stock = rng.integers(0, 50, n).astype(np.int64)
+    cash = rng.normal(1000, 300, n)
+    cash[rng.random(n) < 0.2] = np.inf
+    s1, c1, s2, c2 = stock.copy(), cash.copy(), stock.copy(), cash.copy()
+    assert _kernels.apply_trades(trades, s1, c1)
+    np.add.at(s2, buyer, qty)
+    np.subtract.at(s2, seller, qty)
+    pay = qty * price
+    np.subtract.at(c2, buyer, pay)
+    np.add.at(c2, seller, pay)
+    assert np.array_equal(s1, s2) and np.array_equal(c1, c2)
+
+
+def test_meeting_kernel_matches_the_numpy_chain(forced):
+    rng = np.random.default_rng(8)
+    k, n_edges, n = 3000, 30000, 8000
+    deg = rng.integers(0, 20, k)
+    start = np.minimum(np.concatenate([[0], np.cumsum(deg)[:-1]]), n_edges - 1)
+    seller = rng.integers(k, n, n_edges)
+    mu = rng.normal(100, 8, n)
+    first_row, scale = 0, -0.5 / (2 * 25.0)
+    g_fast, g_ref = np.random.default_rng(1), np.random.default_rng(1)
+    frac, partner, edge, arg = _kernels.meet_one_width(
+        g_fast, deg, start, seller, mu, first_row, scale
+    )
+    u = g_ref.random(k)
+    u *= deg
+    pick = u.astype(np.int64)
+    u -= pick
+    ref_edge = start + pick
+    s = seller[ref_edge]
+    peak = mu[first_row : first_row + k] - mu[s]
+    np.square(peak, out=peak)
+    peak *= scale
+    assert np.array_equal(frac, u) and np.array_equal(partner, s)
+    assert np.array_equal(edge, ref_edge) and np.array_equal(arg, peak)
+    assert _same_state(g_fast, g_ref)
+
+
+def test_price_kernel_matches_numpy(forced):
+    rng = np.random.default_rng(4)
+    mu = rng.normal(100, 10, 5000)
+    b, s = rng.integers(0, 2500, 700), rng.integers(2500, 5000, 700)
+    g_fast, g_ref = np.random.default_rng(6), np.random.default_rng(6)
+    fast = _kernels.prices_one_width(g_fast, mu, b, s, 3.5, 5000)
+    ref = mu[b] + mu[s]
+    ref *= 0.5
+    noise = g_ref.standard_normal(700)
+    noise *= 3.5
+    ref += noise
+    assert np.array_equal(fast, ref) and _same_state(g_fast, g_ref)
+
+
+def _market_config(**changes) -> dict:
+    config = {
+        "population": {
+            "n_buyers": 1500,
+            "n_sellers": 1300,
+            "value": [80.0, 120.0],
+            "cost": [60.0, 100.0],
+            "shade": 10.0,
+            "sigma": 5.0,
+        },
+        "network": {"name": "erdos_renyi", "mean_degree": 6.0},
+        "clearing": {"name": "propensity"},
+        "drift": {"name": "anchor", "noise": 0.5},
+        "market": {"keep_ledger": True},
+    }
+    for key, value in changes.items():
+        section, _, field = key.partition("__")
+        if field:
+            config[section][field] = value
+        else:
+            config[section] = value
+    return config
+
+
+CASES = {
+    "one width": {},
+    "spread widths": {"population__sigma": [3.0, 8.0]},
+    "heights below one": {"population__activity": [0.5, 1.0]},
+    "two meetings": {"clearing": {"name": "propensity", "meetings": 2}},
+    "budgets": {"population__cash": 400.0, "market": {"keep_ledger": True, "replenish": False}},
+    "summed forces": {
+        "drift": {
+            "rules": [{"name": "anchor"}, {"name": "outcome"}, {"name": "width"}],
+            "noise": 0.3,
+        }
+    },
+    "sparse network": {"network": {"name": "erdos_renyi", "mean_degree": 0.8}},
+}
+
+
+@pytest.mark.filterwarnings("ignore:.*trading network hold only:RuntimeWarning")
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_markets_are_identical_with_and_without_kernels(monkeypatch, case):
+    results = {}
+    for how in ("numpy", "numba"):
+        monkeypatch.setenv("PROPENSIM_KERNELS", how)
+        market = build_market(_market_config(**CASES[case]), seed=31, mesa=False)
+        rounds = market.run(12)
+        results[how] = (
+            rounds,
+            market.ledger_frame(),
+            market.population.mu.copy(),
+            market.population.sigma.copy(),
+            market.population.cash.copy(),
+        )
+    slow, fast = results["numpy"], results["numba"]
+    assert len(slow[1]) > 0  # the market traded
+    assert slow[0].equals(fast[0]) and slow[1].equals(fast[1])
+    for a, b in zip(slow[2:], fast[2:], strict=True):
+        assert np.array_equal(a, b)
+
+
+def test_auto_mode_waits_for_enough_work(monkeypatch):
+    monkeypatch.setenv("PROPENSIM_KERNELS", "auto")
+    monkeypatch.setitem(_kernels._state, "work", 0)
+    assert _kernels.compiled(10**6) is None  # no work done yet
+    _kernels.count_work(_kernels.WORK_BEFORE_COMPILED)
+    assert _kernels.compiled(_kernels.MIN_LENGTH - 1) is None  # too short a column
+    assert _kernels.compiled(_kernels.MIN_LENGTH) is not None
+
+
+def test_small_runs_never_import_numba():
+    code = (
+        "import json, sys\n"
+        "from propensim.markets.engine import build_market\n"
+        "cfg = {'population': {'n_buyers': 300, 'n_sellers': 300}, 'drift': {'name': 'anchor',"
+        " 'noise': 0.5}}\n"
+        "build_market(cfg, seed=1, mesa=False).run(50)\n"
+        "print(json.dumps('numba' in sys.modules))\n"
+    )
+    env = {k: v for k, v in __import__("os").environ.items() if k != "PROPENSIM_KERNELS"}
+    res = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env
+    )
+    assert json.loads(res.stdout.strip().splitlines()[-1]) is False
+
+
+def test_a_bad_kernels_setting_is_named(monkeypatch):
+    monkeypatch.setenv("PROPENSIM_KERNELS", "fast")
+    with pytest.raises(ValueError, match="PROPENSIM_KERNELS must be numpy, numba or auto"):
+        _kernels.compiled(10)
