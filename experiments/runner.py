@@ -327,6 +327,27 @@ def _worker_context():
     return ctx
 
 
+def prestart_workers(workers: int | None) -> bool:
+    """Start the pool's preloaded forkserver now, in the background, if a pool will be used.
+
+    The forkserver spends about a second importing :data:`WORKER_PRELOAD`; started before the
+    spec is read and checked, that work overlaps the parent's own start-up instead of delaying
+    the first run. Returns True if a forkserver was started (or already ran). Harmless when no
+    pool follows: the server exits with this process.
+    """
+    if workers == 1 or (workers is None and available_cpus() < 2):
+        return False
+    import multiprocessing
+    from multiprocessing import forkserver
+
+    if "forkserver" not in multiprocessing.get_all_start_methods():
+        return False
+    _worker_context()
+    with pinned_threads():  # the server, and every worker forked from it, keep these
+        forkserver.ensure_running()
+    return True
+
+
 class _Dask:
     kind = "dask"
 
