@@ -104,25 +104,58 @@ def time_block(step, min_time):
             return elapsed / calls, (time.process_time() - cpu0) / calls
 
 
+def _serve(conn, build, min_time):
+    """Child process: build one market, then time blocks of rounds when the parent asks."""
+    import warnings
+
+    warnings.simplefilter("ignore")  # build warnings were seen in the tests; keep the table clean
+    t0 = time.perf_counter()
+    model = build()
+    build_s = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    model.step()
+    first_round_s = time.perf_counter() - t0
+    edges = int(model.network.n_edges) if hasattr(model, "network") else None
+    conn.send((build_s, first_round_s, edges))
+    while conn.recv() == "repeat":
+        conn.send(time_block(model.step, min_time))
+    conn.close()
+
+
 class Timed:
-    """A market under test: its build time, first round and per-round medians."""
+    """A market under test, alive in a process of its own: build time, first round, repeats.
+
+    Each side runs in its own process, as a user would run it: the plain model's hundreds of
+    thousands of Python objects would otherwise sit in the engine's heap too, and every full
+    garbage collection the engine's round triggers would walk them (a cost the engine does not
+    have on its own). The parent only asks for timed blocks, one side at a time.
+    """
 
     def __init__(self, label, build, min_time):
-        t0 = time.perf_counter()
-        self.model = build()
-        self.build_s = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        self.model.step()
-        self.first_round_s = time.perf_counter() - t0
+        import multiprocessing
+
+        ctx = multiprocessing.get_context("spawn")
+        self._conn, child = ctx.Pipe()
+        self._proc = ctx.Process(target=_serve, args=(child, build, min_time), daemon=True)
+        self._proc.start()
+        child.close()
+        self.build_s, self.first_round_s, self.edges = self._conn.recv()
         self.label = label
-        self.min_time = min_time
         self.rounds = []
         self.cpu = []
 
     def repeat(self):
-        wall, cpu = time_block(self.model.step, self.min_time)
+        self._conn.send("repeat")
+        wall, cpu = self._conn.recv()
         self.rounds.append(wall)
         self.cpu.append(cpu)
+
+    def close(self):
+        try:
+            self._conn.send("quit")
+        except OSError:
+            pass
+        self._proc.join(timeout=60)
 
     @property
     def round_s(self):
@@ -134,32 +167,47 @@ class Timed:
 
 
 def side_by_side(builders, repeats, min_time):
-    """Build each market, then time them in turns ``repeats`` times; return Timed objects."""
+    """Build each market in its own process, time them in turns ``repeats`` times; return the
+    Timed objects (their processes ended)."""
     timed = {}
-    for label, build in builders.items():
-        timed[label] = Timed(label, build, min_time)
-    if max(t.first_round_s for t in timed.values()) > 2.0:
-        repeats = min(repeats, 2)  # slow rounds (seconds each): two repeats are enough
-    for _ in range(repeats):
+    try:
+        for label, build in builders.items():
+            timed[label] = Timed(label, build, min_time)
+        if max(t.first_round_s for t in timed.values()) > 2.0:
+            repeats = min(repeats, 2)  # slow rounds (seconds each): two repeats are enough
+        for _ in range(repeats):
+            for t in timed.values():
+                t.repeat()
+    finally:
         for t in timed.values():
-            t.repeat()
+            t.close()
     return timed
 
 
-def _engine_builder(n, clearing, **kw):
-    def build():
-        from propensim.markets.engine import build_market
+def _build_engine(n, clearing, kw, kernels):
+    from propensim.markets.engine import build_market
 
-        return build_market(engine_config(n, clearing, **kw), seed=12345, mesa=False)
+    # The steady state of a long run: the compiled loops on ("numba"), or numpy alone.
+    os.environ["PROPENSIM_KERNELS"] = kernels
+    return build_market(engine_config(n, clearing, **kw), seed=12345, mesa=False)
 
-    return build
+
+def _build_plain(model_cls_name, n, extra):
+    import plain_mesa
+
+    return getattr(plain_mesa, model_cls_name)(**plain_params(n, **extra), rng=12345)
+
+
+def _engine_builder(n, clearing, kernels="numba", **kw):
+    import functools
+
+    return functools.partial(_build_engine, n, clearing, kw, kernels)
 
 
 def _plain_builder(model_cls, n, **extra):
-    def build():
-        return model_cls(**plain_params(n, **extra), rng=12345)
+    import functools
 
-    return build
+    return functools.partial(_build_plain, model_cls.__name__, n, extra)
 
 
 def _row_for(bench, n, timed, plain_label="plain", engine_label="engine", note=""):
@@ -171,8 +219,8 @@ def _row_for(bench, n, timed, plain_label="plain", engine_label="engine", note="
             engine_round_s=e.round_s,
             engine_agent_rounds_per_s=n / e.round_s,
         )
-        if hasattr(e.model, "network"):
-            row["edges"] = int(e.model.network.n_edges)
+        if e.edges is not None:
+            row["edges"] = e.edges
     if p is not None:
         row.update(
             plain_build_s=p.build_s,
@@ -182,6 +230,11 @@ def _row_for(bench, n, timed, plain_label="plain", engine_label="engine", note="
     if e is not None and p is not None:
         row["ratio"] = p.round_s / e.round_s
         row["ratio_cpu"] = p.cpu_s / e.cpu_s
+    numpy_only = timed.get("engine_numpy")
+    if numpy_only is not None:
+        row["engine_numpy_round_s"] = numpy_only.round_s
+        if p is not None:
+            row["ratio_numpy"] = p.round_s / numpy_only.round_s
     if note:
         row["note"] = note
     return row
@@ -192,7 +245,10 @@ def _compare_sizes(bench, clearing, plain_cls, sizes, plain_sizes, engine_only, 
     rows, notes = [], []
     last_plain = None
     for n in sizes:
-        builders = {"engine": _engine_builder(n, clearing)}
+        builders = {
+            "engine": _engine_builder(n, clearing),
+            "engine_numpy": _engine_builder(n, clearing, kernels="numpy"),
+        }
         if n in plain_sizes:
             builders["plain"] = _plain_builder(plain_cls, n, **plain_extra)
         repeats = cfg.repeats if n <= 10**5 else max(2, cfg.repeats // 2)
@@ -207,6 +263,7 @@ def _compare_sizes(bench, clearing, plain_cls, sizes, plain_sizes, engine_only, 
             row["plain_build_s"] = p0.build_s * n / n0
             row["plain_agent_rounds_per_s"] = n0 / p0.round_s
             row["ratio"] = row["plain_round_s"] / row["engine_round_s"]
+            row["ratio_numpy"] = row["plain_round_s"] / row["engine_numpy_round_s"]
             row["note"] = f"plain extrapolated linearly from {n0:.0e}"
             notes.append(f"{bench}: plain Mesa at {n:.0e} extrapolated linearly from {n0:.0e}")
         rows.append(row)
@@ -244,7 +301,48 @@ def bench_matching(cfg):
         "one round = propensity matching (1 meeting per buyer) + anchor drift (exact OU) + "
         "volume and mean price; Erdos-Renyi bipartite network, mean degree 10"
     )
-    return {"rows": rows, "notes": notes, "targets": {"ratio_at_1e5": [30, 100]}}
+    notes.append(
+        "engine = the steady state of a long run, compiled loops on (PROPENSIM_KERNELS=numba; "
+        "the default 'auto' turns them on after 2e7 trader-rounds); engine_numpy_round_s and "
+        "ratio_numpy = numpy alone. Both give identical numbers"
+    )
+    startup = _kernels_startup()
+    notes.append(
+        f"compiled loops, one-off cost per process (import numba, load the cached code): "
+        f"{startup:.2f} s"
+    )
+    return {
+        "rows": rows,
+        "notes": notes,
+        "targets": {"ratio_at_1e5": [30, 100]},
+        "kernels_startup_s": startup,
+    }
+
+
+KERNELS_STARTUP_CHILD = r"""
+import os, time
+os.environ["PROPENSIM_KERNELS"] = "numba"
+import numpy as np
+from propensim.markets.engine import build_market
+m = build_market({"population": {"n_buyers": 50, "n_sellers": 50},
+                  "drift": {"name": "anchor", "noise": 0.5}}, seed=1, mesa=False)
+t0 = time.perf_counter()
+m.step()
+print(time.perf_counter() - t0)
+"""
+
+
+def _kernels_startup():
+    """Seconds a fresh process spends on its first round with the compiled loops (numba import
+    and loading the cached code; compiling too, the very first time on a machine)."""
+    subprocess.run([sys.executable, "-c", KERNELS_STARTUP_CHILD], capture_output=True, check=True)
+    proc = subprocess.run(
+        [sys.executable, "-c", KERNELS_STARTUP_CHILD],
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    return float(proc.stdout.strip().splitlines()[-1])
 
 
 # -- 2. auctions ----------------------------------------------------------------------------------
@@ -303,6 +401,8 @@ def maxrss_mb():
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 n, degree, rounds = int(sys.argv[1]), float(sys.argv[2]), int(sys.argv[3])
 config = json.loads(sys.argv[4])
+import os
+os.environ["PROPENSIM_KERNELS"] = sys.argv[5]
 from propensim.markets.engine import build_market
 import numpy as np
 base = rss_mb()
@@ -331,22 +431,37 @@ def bench_memory(cfg):
         metrics=["volume", "mean_price", "vwap"],
         ledger=True,
     )
-    proc = subprocess.run(
-        [sys.executable, "-c", MEMORY_CHILD, str(n), str(degree), str(rounds), json.dumps(config)],
-        capture_output=True,
-        text=True,
-        cwd=str(ROOT),
-    )
-    if proc.returncode != 0:
-        raise RuntimeError(proc.stderr.strip().splitlines()[-1] if proc.stderr else "child failed")
-    row = {"bench": "memory", **json.loads(proc.stdout.strip().splitlines()[-1])}
-    _progress(row)
+    rows = []
+    for kernels in ("numba", "numpy"):
+        proc = subprocess.run(
+            [
+                sys.executable,
+                "-c",
+                MEMORY_CHILD,
+                str(n),
+                str(degree),
+                str(rounds),
+                json.dumps(config),
+                kernels,
+            ],
+            capture_output=True,
+            text=True,
+            cwd=str(ROOT),
+        )
+        if proc.returncode != 0:
+            msg = proc.stderr.strip().splitlines()[-1] if proc.stderr else "child failed"
+            raise RuntimeError(msg)
+        row = {"bench": "memory", "kernels": kernels}
+        row.update(json.loads(proc.stdout.strip().splitlines()[-1]))
+        rows.append(row)
+        _progress(row)
     return {
-        "rows": [row],
+        "rows": rows,
         "notes": [
             "fresh subprocess; peak_rss_mb = VmHWM of the child (ru_maxrss_mb alongside: on "
             "Linux it can carry the parent's peak over fork+exec); propensity matching + anchor "
-            "drift, ledger kept, metrics volume/mean_price/vwap"
+            "drift, ledger kept, metrics volume/mean_price/vwap; kernels=numba includes numba "
+            "and its compiled code"
         ],
         "targets": {"peak_rss_mb": 1024},
     }
@@ -431,7 +546,18 @@ def _propensim_cmd():
 
 
 def _sweep_seconds(folder):
-    """Sweep time recorded by the store's manifest (start to end), if it has one."""
+    """Seconds from the start of the first run to the end of the last (process start-up, imports
+    and worker start-up excluded), from the store's timings table (millisecond times); the
+    manifest's start and end (whole seconds) when that table cannot be read."""
+    try:
+        import pandas as pd
+
+        t = pd.read_parquet(Path(folder) / "timings.parquet")
+        end = pd.to_datetime(t["finished"], format="ISO8601")
+        start = end - pd.to_timedelta(t["duration_s"], unit="s")
+        return float((end.max() - start.min()).total_seconds())
+    except Exception:  # an older store layout: fall back to the manifest
+        pass
     try:
         manifest = json.loads((Path(folder) / "manifest.json").read_text())
     except (OSError, ValueError):
@@ -498,6 +624,22 @@ def _pilot_rounds(n, target_s):
     return max(10, int((target_s - build) / per_round))
 
 
+def _calibrated_rounds(n, target_s, tmp):
+    """Rounds at which one run of the workers benchmark takes about ``target_s`` in a sweep.
+
+    A pilot in this process gives a first guess; three runs through ``propensim run`` (the way
+    the benchmark runs them: metrics, store and all) then rescale it to the measured duration.
+    """
+    rounds = _pilot_rounds(n, target_s)
+    spec = tmp / "calibrate.toml"
+    spec.write_text(_spec_text("bench-calibrate", n, rounds, (5.0,), (1,), 3))
+    _propensim_run(spec, tmp / "calibrate", ["--workers", "1"])
+    measured = _median_run_seconds(tmp / "calibrate")
+    if math.isfinite(measured) and measured > 0:
+        rounds = max(10, round(rounds * target_s / measured))
+    return rounds
+
+
 def bench_sweeps(cfg):
     rows, notes = [], []
     if cfg.quick:
@@ -550,7 +692,7 @@ def bench_sweeps(cfg):
         # 1 against 2 workers, runs of about 1 s (0.3 s in quick mode).
         n_big = 10**4
         target = 0.3 if cfg.quick else 1.0
-        big_rounds = _pilot_rounds(n_big, target)
+        big_rounds = _calibrated_rounds(n_big, target, tmp)
         n_long = 8 if cfg.quick else 16
         spec2 = tmp / "long.toml"
         spec2.write_text(_spec_text("bench-long", n_big, big_rounds, (5.0,), (1,), n_long))
@@ -572,6 +714,7 @@ def bench_sweeps(cfg):
                 "speedup": one / two,
                 "one_worker_sweep_s": _median([s for _, s in w1]),
                 "two_workers_sweep_s": _median([s for _, s in w2]),
+                "speedup_sweep": _median([s for _, s in w1]) / _median([s for _, s in w2]),
                 "machine_capacity": _median(capacity),
             }
         )
@@ -580,7 +723,8 @@ def bench_sweeps(cfg):
         shutil.rmtree(tmp, ignore_errors=True)
     notes.append(
         "end-to-end wall clock of fresh processes (interpreter start, imports, store writes "
-        "included); *_sweep_s from the store manifest's start/end when present"
+        "included); *_sweep_s from the first run's start to the last run's end (store timings): "
+        "the same without interpreter, import and worker start-up; speedup_sweep is their ratio"
     )
     notes.append(f"batch_run: max_steps=rounds-1 so both sides run {rounds} rounds per run")
     notes.append(
@@ -596,8 +740,21 @@ def bench_sweeps(cfg):
 
 # -- 5. scaling -----------------------------------------------------------------------------------
 def bench_scaling(cfg):
+    previous = os.environ.get("PROPENSIM_KERNELS")
+    os.environ["PROPENSIM_KERNELS"] = "numba"  # the steady state of long runs (as `matching`)
+    try:
+        return _scaling(cfg)
+    finally:
+        if previous is None:
+            os.environ.pop("PROPENSIM_KERNELS", None)
+        else:
+            os.environ["PROPENSIM_KERNELS"] = previous
+
+
+def _scaling(cfg):
     from propensim.markets.engine import build_market
 
+    build_market(engine_config(2000, "propensity"), seed=1, mesa=False).run(2)  # load kernels
     rows = []
     n = 2 * 10**4 if cfg.quick else 10**5
     for degree in (5.0, 10.0, 20.0, 40.0):
