@@ -324,6 +324,8 @@ import os, time
 os.environ["PROPENSIM_KERNELS"] = "numba"
 import numpy as np
 from propensim.markets.engine import build_market
+from propensim.plugins import _kernels
+_kernels.MIN_LENGTH = 1  # a tiny market, so that every kernel is called once
 m = build_market({"population": {"n_buyers": 50, "n_sellers": 50},
                   "drift": {"name": "anchor", "noise": 0.5}}, seed=1, mesa=False)
 t0 = time.perf_counter()

@@ -11,12 +11,12 @@ same too (numba does not contract ``a * b + c`` into a fused multiply-add unless
 
 When the kernels run:
 
-* ``PROPENSIM_KERNELS=numpy`` never, ``=numba`` always (if numba imports), ``=auto`` (the
-  default) once this process has stepped :data:`WORK_BEFORE_COMPILED` trader-rounds, and only for
-  columns of at least :data:`MIN_LENGTH` rows. Importing numba and loading the compiled code costs
-  about half a second once per process; small or short runs never pay it, long large ones earn
-  it back many times. Because the results are identical either way, switching mid-run changes
-  nothing but the speed.
+* Only for columns of at least :data:`MIN_LENGTH` rows (below that numpy is as fast).
+* ``PROPENSIM_KERNELS=numpy``: never. ``=numba``: from the first round. ``=auto`` (the default):
+  once this process has stepped :data:`WORK_BEFORE_COMPILED` trader-rounds. Importing numba and
+  loading the compiled code costs about 0.3 s once per process; small or short runs never pay
+  it, long large ones earn it back many times. Because the results are identical either way,
+  switching mid-run changes nothing but the speed.
 * Without numba (not installed, or failing to import) everything runs on numpy.
 """
 
@@ -51,9 +51,9 @@ def count_work(trader_rounds: int) -> None:
 def compiled(length: int):
     """The compiled kernels module if a column of ``length`` rows should use it, else None."""
     how = mode()
-    if how == "numpy" or _state["failed"]:
+    if how == "numpy" or _state["failed"] or length < MIN_LENGTH:
         return None
-    if how == "auto" and (length < MIN_LENGTH or _state["work"] < WORK_BEFORE_COMPILED):
+    if how == "auto" and _state["work"] < WORK_BEFORE_COMPILED:
         return None
     module = _state["module"]
     if module is None:

@@ -23,17 +23,17 @@ from propensim.plugins.types import Trades
 pytest.importorskip("numba")
 
 
+@pytest.fixture(autouse=True)
+def every_length(monkeypatch):
+    """Let the kernels take columns of any length, so that small test markets use them."""
+    monkeypatch.setattr(_kernels, "MIN_LENGTH", 1)
+
+
 @pytest.fixture
 def forced(monkeypatch):
-    """Kernels on at every size (as ``PROPENSIM_KERNELS=numba``)."""
+    """Kernels on from the first round (``PROPENSIM_KERNELS=numba``)."""
     monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
     assert _kernels.compiled(1) is not None
-
-
-@pytest.fixture
-def numpy_only(monkeypatch):
-    monkeypatch.setenv("PROPENSIM_KERNELS", "numpy")
-    assert _kernels.compiled(10**9) is None
 
 
 def _same_state(g1: np.random.Generator, g2: np.random.Generator) -> bool:
@@ -213,13 +213,17 @@ def test_markets_are_identical_with_and_without_kernels(monkeypatch, case):
         assert np.array_equal(a, b)
 
 
-def test_auto_mode_waits_for_enough_work(monkeypatch):
+def test_auto_mode_waits_for_enough_work_and_long_columns(monkeypatch):
+    monkeypatch.setattr(_kernels, "MIN_LENGTH", 4096)
     monkeypatch.setenv("PROPENSIM_KERNELS", "auto")
     monkeypatch.setitem(_kernels._state, "work", 0)
     assert _kernels.compiled(10**6) is None  # no work done yet
     _kernels.count_work(_kernels.WORK_BEFORE_COMPILED)
-    assert _kernels.compiled(_kernels.MIN_LENGTH - 1) is None  # too short a column
-    assert _kernels.compiled(_kernels.MIN_LENGTH) is not None
+    assert _kernels.compiled(4095) is None  # too short a column
+    assert _kernels.compiled(4096) is not None
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    monkeypatch.setitem(_kernels._state, "work", 0)
+    assert _kernels.compiled(4096) is not None and _kernels.compiled(4095) is None
 
 
 def test_small_runs_never_import_numba():
