@@ -162,12 +162,22 @@ class MarketEngine:
 
         pop, state = self.population, self.state
         _kernels.count_work(len(pop))
-        if self.replenish:
-            np.copyto(pop.stock, self._initial_stock)
-            np.copyto(pop.cash, self._initial_cash)
         state.round = self.round
-        remaining = pop.capacity.astype(np.int64)  # shape: (n,) a seller also needs stock
-        np.minimum(remaining, pop.stock, out=remaining, where=self._is_seller)
+        remaining = _kernels.start_round(  # one compiled pass when available: same numbers
+            self.replenish,
+            self._initial_stock,
+            self._initial_cash,
+            pop.stock,
+            pop.cash,
+            pop.capacity,
+            self._is_seller,
+        )
+        if remaining is None:
+            if self.replenish:
+                np.copyto(pop.stock, self._initial_stock)
+                np.copyto(pop.cash, self._initial_cash)
+            remaining = pop.capacity.astype(np.int64)  # shape: (n,) a seller also needs stock
+            np.minimum(remaining, pop.stock, out=remaining, where=self._is_seller)
         state.remaining = remaining
         if getattr(self.clearing, "per_agent", False):
             from propensim.plugins.clearing import run_per_agent

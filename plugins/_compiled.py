@@ -70,3 +70,30 @@ def prices_one_width(rng, mu, buyer, seller, sd):
         mean = (mu[buyer[i]] + mu[seller[i]]) * 0.5
         out[i] = mean + rng.standard_normal() * sd
     return out
+
+
+@numba.njit(cache=True, nogil=True)
+def is_uniform(values):
+    """``values.min() == values.max()`` for a non-empty column, stopping at the first change."""
+    first = values[0]
+    for i in range(1, values.shape[0]):
+        if values[i] != first:
+            return False
+    return first == first  # a column of NaN: min == max is False
+
+
+@numba.njit(cache=True, nogil=True)
+def start_round(replenish, stock0, cash0, stock, cash, capacity, is_seller, remaining):
+    """Restore stock and cash (when ``replenish``) and set the units each trader may trade.
+
+    Matches ``np.copyto(stock, stock0); np.copyto(cash, cash0)`` (when ``replenish``), then
+    ``remaining = capacity; np.minimum(remaining, stock, out=remaining, where=is_seller)``.
+    """
+    for i in range(stock.shape[0]):
+        if replenish:
+            stock[i] = stock0[i]
+            cash[i] = cash0[i]
+        cap = capacity[i]
+        if is_seller[i] and stock[i] < cap:
+            cap = stock[i]
+        remaining[i] = cap

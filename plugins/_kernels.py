@@ -134,3 +134,28 @@ def prices_one_width(rng, mu, buyer, seller, sd: float, rows: int):
     if buyer.shape != seller.shape or (buyer.size and max(buyer.max(), seller.max()) >= mu.size):
         raise ValueError("prices_one_width: rows outside mu")
     return module.prices_one_width(rng, mu, buyer, seller, float(sd))
+
+
+def is_uniform(values: np.ndarray) -> bool:
+    """True if a non-empty column holds one value (``min == max``), in one pass when compiled."""
+    if values.size == 0:
+        return False
+    module = compiled(values.size) if values.ndim == 1 else None
+    if module is None:
+        return bool(values.min() == values.max())
+    return bool(module.is_uniform(values))
+
+
+def start_round(replenish, stock0, cash0, stock, cash, capacity, is_seller):
+    """The units each trader may trade this round, after restoring stock and cash when
+    ``replenish`` (see ``_compiled.start_round``); None when not compiled here."""
+    n = stock.shape[0]
+    module = compiled(n)
+    columns = (stock0, cash0, cash, capacity, is_seller)
+    if module is None or any(c.shape != (n,) for c in columns):
+        return None
+    if stock.dtype != np.int64 or capacity.dtype != np.int64 or cash.dtype != np.float64:
+        return None
+    remaining = np.empty(n, dtype=np.int64)
+    module.start_round(bool(replenish), stock0, cash0, stock, cash, capacity, is_seller, remaining)
+    return remaining

@@ -130,7 +130,7 @@ def propensity_round(
         own = rows
     normal = pop.curve == "normal"
     sigma = pop.sigma
-    one_width = normal and bool(sigma.min() == sigma.max())
+    one_width = normal and _kernels.is_uniform(sigma)
     # Bromiley 2003: the joint peak is exp(-gap^2 / (2 var_sum)) times the heights. With one
     # width for every trader (the default, and kept by drift rules that leave widths alone) the
     # variances are scalars and broadcast.

@@ -148,7 +148,7 @@ def _fits_kernel(mu, *columns) -> bool:
 
 def _uniform(values: np.ndarray) -> bool:
     """True if a non-empty column holds one value (then a term of it can be a scalar)."""
-    return bool(values.size) and bool(values.min() == values.max())
+    return _kernels.is_uniform(values)
 
 
 def ou_step(

@@ -151,6 +151,39 @@ def test_price_kernel_matches_numpy(forced):
     assert np.array_equal(fast, ref) and _same_state(g_fast, g_ref)
 
 
+@pytest.mark.parametrize(
+    "values",
+    [
+        np.full(50, 5.0),
+        np.r_[np.full(49, 5.0), 5.0000001],
+        np.r_[4.0, np.full(49, 5.0)],
+        np.full(30, np.nan),
+        np.r_[-0.0, 0.0, 0.0],
+        np.array([7.0]),
+    ],
+)
+def test_uniform_check_matches_min_equals_max(forced, values):
+    assert _kernels.is_uniform(values) == bool(values.min() == values.max())
+
+
+@pytest.mark.parametrize("replenish", [True, False])
+def test_round_start_matches_numpy(forced, replenish):
+    rng = np.random.default_rng(12)
+    n = 2000
+    stock0, stock = rng.integers(0, 6, n), rng.integers(0, 6, n)
+    cash0, cash = rng.normal(100, 30, n), rng.normal(100, 30, n)
+    capacity = rng.integers(0, 4, n)
+    is_seller = rng.random(n) < 0.5
+    s1, c1, s2, c2 = stock.copy(), cash.copy(), stock.copy(), cash.copy()
+    fast = _kernels.start_round(replenish, stock0, cash0, s1, c1, capacity, is_seller)
+    if replenish:
+        np.copyto(s2, stock0)
+        np.copyto(c2, cash0)
+    ref = capacity.astype(np.int64)
+    np.minimum(ref, s2, out=ref, where=is_seller)
+    assert np.array_equal(fast, ref) and np.array_equal(s1, s2) and np.array_equal(c1, c2)
+
+
 def _market_config(**changes) -> dict:
     config = {
         "population": {
