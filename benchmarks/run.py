@@ -108,7 +108,7 @@ def _serve(conn, build, min_time):
     """Child process: build one market, then time blocks of rounds when the parent asks."""
     import warnings
 
-    warnings.simplefilter("ignore")  # build warnings were seen in the tests; keep the table clean
+    warnings.simplefilter("ignore")  # build warnings (traders who cannot trade) clutter the table
     t0 = time.perf_counter()
     model = build()
     build_s = time.perf_counter() - t0

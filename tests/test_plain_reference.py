@@ -151,3 +151,27 @@ def test_plain_anchor_drift_is_the_exact_ou_step(plain):
     # 400 draws: the sample variance has relative sd sqrt(2/399) ~ 7%; allow 4 of them.
     assert abs(mu.var() - expected) < 4 * expected * math.sqrt(2 / 399)
     assert abs(mu.mean() - 100.0) < 4 * math.sqrt(expected / 400)
+
+
+@pytest.mark.slow
+def test_benchmark_harness_times_each_side_in_its_own_process():
+    # The harness itself (benchmarks/run.py): builds the plain model, the engine with compiled
+    # loops and the engine on numpy alone in three child processes and times them in turns.
+    import subprocess
+
+    code = (
+        "import json, sys\n"
+        f"sys.path.insert(0, {str(BENCH)!r})\n"
+        "import run as R, plain_mesa\n"
+        "if __name__ == '__main__':\n"
+        "    t = R.side_by_side({'engine': R._engine_builder(6000, 'propensity'),\n"
+        "        'engine_numpy': R._engine_builder(6000, 'propensity', kernels='numpy'),\n"
+        "        'plain': R._plain_builder(plain_mesa.PlainPropensityMarket, 6000, meetings=1)},\n"
+        "        2, 0.02)\n"
+        "    row = R._row_for('matching', 6000, t)\n"
+        "    print(json.dumps(row))\n"
+    )
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    row = __import__("json").loads(res.stdout.strip().splitlines()[-1])
+    assert row["edges"] > 0 and row["engine_round_s"] > 0 and row["plain_round_s"] > 0
+    assert row["ratio"] > 0 and row["ratio_numpy"] > 0  # both sides measured (no speed target)
