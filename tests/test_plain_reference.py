@@ -157,6 +157,7 @@ def test_plain_anchor_drift_is_the_exact_ou_step(plain):
 def test_benchmark_harness_times_each_side_in_its_own_process():
     # The harness itself (benchmarks/run.py): builds the plain model, the engine with compiled
     # loops and the engine on numpy alone in three child processes and times them in turns.
+    import json
     import subprocess
 
     code = (
@@ -172,6 +173,6 @@ def test_benchmark_harness_times_each_side_in_its_own_process():
         "    print(json.dumps(row))\n"
     )
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    row = __import__("json").loads(res.stdout.strip().splitlines()[-1])
+    row = json.loads(res.stdout.strip().splitlines()[-1])
     assert row["edges"] > 0 and row["engine_round_s"] > 0 and row["plain_round_s"] > 0
     assert row["ratio"] > 0 and row["ratio_numpy"] > 0  # both sides measured (no speed target)

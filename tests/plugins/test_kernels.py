@@ -9,6 +9,7 @@ column by column. The reference for the normal draws is NumPy itself:
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 
@@ -268,7 +269,7 @@ def test_small_runs_never_import_numba():
         "build_market(cfg, seed=1, mesa=False).run(50)\n"
         "print(json.dumps('numba' in sys.modules))\n"
     )
-    env = {k: v for k, v in __import__("os").environ.items() if k != "PROPENSIM_KERNELS"}
+    env = {k: v for k, v in os.environ.items() if k != "PROPENSIM_KERNELS"}
     res = subprocess.run(
         [sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env
     )
