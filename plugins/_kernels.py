@@ -50,8 +50,10 @@ def count_work(trader_rounds: int) -> None:
 
 def compiled(length: int):
     """The compiled kernels module if a column of ``length`` rows should use it, else None."""
+    if length < MIN_LENGTH or _state["failed"]:  # small markets never read the setting
+        return None
     how = mode()
-    if how == "numpy" or _state["failed"] or length < MIN_LENGTH:
+    if how == "numpy":
         return None
     if how == "auto" and _state["work"] < WORK_BEFORE_COMPILED:
         return None
@@ -99,10 +101,14 @@ def apply_trades(trades, stock, cash) -> bool:
 
     Returns False, doing nothing, when not compiled here.
     """
-    module = compiled(stock.shape[0])
-    if module is None or stock.dtype != np.int64 or cash.dtype != np.float64:
+    n = stock.shape[0]
+    module = compiled(n)
+    if module is None or stock.dtype != np.int64 or cash.dtype != np.float64 or cash.shape != (n,):
         return False
-    module.apply_trades(trades.buyer, trades.seller, trades.quantity, trades.price, stock, cash)
+    b, s = trades.buyer, trades.seller
+    if b.size and (min(b.min(), s.min()) < 0 or max(b.max(), s.max()) >= n):
+        return False  # no bounds checks in the loop: numpy's ufunc.at raises the IndexError
+    module.apply_trades(b, s, trades.quantity, trades.price, stock, cash)
     return True
 
 

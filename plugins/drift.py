@@ -572,21 +572,10 @@ class DriftSum:
             k, c = np.asarray(k, dtype=float), np.asarray(c, dtype=float)
             return (k if k.ndim == 0 else _column(k, n)), (c if c.ndim == 0 else _column(c, n))
         stiffness = offset = np.float64(0.0)
-        for rule in self.rules:
+        for rule in self.rules:  # summed in rule order: scalars stay scalars, columns broadcast
             k, c = rule.terms(state, outcome)
-            k, c = np.asarray(k, dtype=float), np.asarray(c, dtype=float)
-            if k.ndim and stiffness.ndim == 0:
-                stiffness = np.full(n, stiffness)  # shape: (n,)
-            if c.ndim and offset.ndim == 0:
-                offset = np.full(n, offset)  # shape: (n,)
-            if stiffness.ndim:
-                stiffness += k
-            else:
-                stiffness = stiffness + k
-            if offset.ndim:
-                offset += c
-            else:
-                offset = offset + c
+            stiffness = stiffness + np.asarray(k, dtype=float)
+            offset = offset + np.asarray(c, dtype=float)
         return stiffness, offset
 
     def update_sigma(

@@ -16,8 +16,10 @@ import sys
 import numpy as np
 import pytest
 
+from propensim.agents.population import Population
 from propensim.markets.engine import build_market
 from propensim.plugins import _kernels
+from propensim.plugins._invariants import apply_trades
 from propensim.plugins.drift import _ou_apply
 from propensim.plugins.types import Trades
 
@@ -110,6 +112,27 @@ def test_apply_trades_matches_the_ufunc_at_sequence(forced):
     np.subtract.at(c2, buyer, pay)
     np.add.at(c2, seller, pay)
     assert np.array_equal(s1, s2) and np.array_equal(c1, c2)
+
+
+def test_apply_kernel_leaves_rows_out_of_range_to_numpy(forced):
+    # The compiled loop has no bounds checks: a bad row must reach numpy, which raises.
+    trades = Trades(np.array([0, 7]), np.array([3, 2]), np.array([1.0, 1.0]), np.array([1, 1]))
+    stock, cash = np.zeros(5, dtype=np.int64), np.zeros(5)
+    assert not _kernels.apply_trades(trades, stock, cash)
+    assert not stock.any() and not cash.any()
+    with pytest.raises(IndexError):
+        pop = Population(
+            role=[0, 0, 1, 1, 1],
+            mu=100.0,
+            sigma=5.0,
+            activity=1.0,
+            gamma=1.0,
+            value=100.0,
+            cash=50.0,
+            stock=1,
+            capacity=1,
+        )
+        apply_trades(pop, trades)
 
 
 def test_meeting_kernel_matches_the_numpy_chain(forced):
