@@ -342,7 +342,7 @@ def prestart_workers(workers: int | None) -> bool:
 
     if "forkserver" not in multiprocessing.get_all_start_methods():
         return False
-    _worker_context()
+    _worker_context()  # registers WORKER_PRELOAD with the forkserver before it starts
     with pinned_threads():  # the server, and every worker forked from it, keep these
         forkserver.ensure_running()
     return True
