@@ -183,10 +183,10 @@ def cmd_run(args) -> int:
     """``propensim run``."""
     from propensim.experiments.spec import load_spec
 
-    if args.scheduler is None and args.dask_local is None:
+    if args.scheduler is None:
         from propensim.experiments.runner import prestart_workers
 
-        prestart_workers(args.workers)  # its imports overlap the reading of the spec
+        prestart_workers(args.workers, args.dask_local)  # its imports overlap reading the spec
     spec = load_spec(args.spec, args.overrides)
     _, code = _sweep(
         spec,

@@ -58,3 +58,33 @@ def test_unreachable_scheduler_is_one_line(spec, tmp_path):
         with pytest.raises(BackendError, match="cannot reach the Dask scheduler") as info:
             run_experiment(spec, tmp_path / "r", scheduler="tcp://127.0.0.1:9", progress=False)
     assert "\n" not in str(info.value)
+
+
+def _worker_settings():
+    import sys
+
+    import dask
+
+    return {
+        "tick": dask.config.get("distributed.admin.tick.interval"),
+        "profile": dask.config.get("distributed.worker.profile.enabled"),
+        "engine_loaded": "propensim.markets.engine" in sys.modules,
+    }
+
+
+@pytest.mark.slow
+def test_local_dask_workers_start_quiet_and_preloaded():
+    pytest.importorskip("distributed")
+    import multiprocessing
+
+    from propensim.experiments.runner import _Dask
+
+    backend = _Dask(local=1)
+    try:
+        (seen,) = backend._client.run(_worker_settings).values()
+    finally:
+        backend.close()
+    assert seen["tick"] == "1s" and seen["profile"] is False  # our light settings reached it
+    if "forkserver" in multiprocessing.get_all_start_methods():
+        # forked from the preloaded server: the engine came with it, before any task ran
+        assert seen["engine_loaded"]
