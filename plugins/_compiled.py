@@ -48,27 +48,39 @@ def meet_one_width(rng, deg, start, seller, mu, first_row, scale, frac, partner,
     pick = u.astype(int64); u -= pick; edge = start + pick; s = seller[edge];
     arg = mu[first_row:first_row + k] - mu[s]; arg = arg * arg; arg *= scale``
     (``frac`` receives ``u``, ``partner`` receives ``s``). The caller takes ``exp(arg)``.
+
+    Two passes, not one: the draws form one chain through the generator's state, and a loop
+    that also reads ``seller[e]`` and ``mu[s]`` (random places in columns larger than the
+    cache) leaves the processor few independent loads to overlap. With the reads in a loop
+    of their own, every iteration's loads are independent. Measured at 1e5 buyers with cold
+    caches: 1.3-1.4 ms in one pass, 1.1 ms in two; at 1e6: 14-16 ms against 7 ms.
     """
-    for i in range(deg.shape[0]):
+    k = deg.shape[0]
+    for i in range(k):
         x = rng.random() * deg[i]
         pick = np.int64(x)
-        e = start[i] + pick
-        s = seller[e]
-        gap = mu[first_row + i] - mu[s]
         frac[i] = x - pick
+        edge[i] = start[i] + pick
+    for i in range(k):
+        s = seller[edge[i]]
         partner[i] = s
-        edge[i] = e
+        gap = mu[first_row + i] - mu[s]
         arg[i] = gap * gap * scale
 
 
 @numba.njit(cache=True, nogil=True)
 def prices_one_width(rng, mu, buyer, seller, sd):
-    """``(mu[buyer] + mu[seller]) * 0.5 + rng.standard_normal(m) * sd``, in that order."""
+    """``(mu[buyer] + mu[seller]) * 0.5 + rng.standard_normal(m) * sd``, in that order.
+
+    The draws first, then the random reads of ``mu`` (see :func:`meet_one_width`).
+    """
     m = buyer.shape[0]
     out = np.empty(m)
     for i in range(m):
+        out[i] = rng.standard_normal()
+    for i in range(m):
         mean = (mu[buyer[i]] + mu[seller[i]]) * 0.5
-        out[i] = mean + rng.standard_normal() * sd
+        out[i] = mean + out[i] * sd
     return out
 
 
