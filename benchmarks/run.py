@@ -314,7 +314,7 @@ def bench_matching(cfg):
     return {
         "rows": rows,
         "notes": notes,
-        "targets": {"ratio_at_1e5": [30, 100]},
+        "targets": {"ratio_at_1e5": 100},
         "kernels_startup_s": startup,
     }
 
