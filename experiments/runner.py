@@ -386,8 +386,10 @@ class _Dask:
                 }
                 # Workers forked from our preloaded forkserver (see prestart_workers) start
                 # with distributed, pandas and propensim imported, instead of importing them
-                # in a fresh interpreter each (spawn, Dask's default): a 320-run sweep on two
-                # workers went from 1.19 to 1.12 times the pool's wall clock (medians of 5).
+                # in a fresh interpreter each (spawn, Dask's default). A 320-run sweep on two
+                # workers took 1.24-1.34x the pool's wall clock before these two changes, 1.17x
+                # with the quieter servers alone and 1.02x with both (medians of back-to-back
+                # pairs on a busy 2-core machine; see docs/performance.md).
                 if prestart_workers(None, dask_local=int(local)):
                     light["distributed.worker.multiprocessing-method"] = "forkserver"
                 with pinned_threads(), dask.config.set(light):
