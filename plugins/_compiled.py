@@ -52,8 +52,9 @@ def meet_one_width(rng, deg, start, seller, mu, first_row, scale, frac, partner,
     Two passes, not one: the draws form one chain through the generator's state, and a loop
     that also reads ``seller[e]`` and ``mu[s]`` (random places in columns larger than the
     cache) leaves the processor few independent loads to overlap. With the reads in a loop
-    of their own, every iteration's loads are independent. Measured at 1e5 buyers with cold
-    caches: 1.3-1.4 ms in one pass, 1.1 ms in two; at 1e6: 14-16 ms against 7 ms.
+    of their own, every iteration's loads are independent. Measured with cold caches in a
+    market of 1e5 traders (5e4 buyers): 1.3-1.4 ms in one pass, 1.1 ms in two; of 1e6 traders:
+    14-16 ms against 7 ms.
     """
     k = deg.shape[0]
     for i in range(k):
