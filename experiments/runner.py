@@ -99,7 +99,9 @@ class RunResult:
     summary : dict of str to float
         One number per metric (empty when failed).
     rounds, traders, ledger : pandas.DataFrame or None
-        Round table, sampled trader states and trades, when the plan collects them.
+        Round table, sampled trader states and trades, when the plan collects them. (On their
+        way back from a worker they travel as column dicts, name -> array, so that workers never
+        import pandas; the sweep turns them into DataFrames on arrival.)
     error_type, error_message, traceback : str or None
         For a failed run: the exception's class name, its message, the formatted traceback.
     duration : float
@@ -131,6 +133,16 @@ class RunResult:
     def ok(self) -> bool:
         """True if the run finished without an error."""
         return self.status == "ok"
+
+    def _to_frames(self) -> RunResult:
+        """Turn tables that arrived as column dicts into pandas DataFrames (in place)."""
+        for name in ("rounds", "traders", "ledger"):
+            table = getattr(self, name)
+            if isinstance(table, dict):
+                import pandas as pd
+
+                setattr(self, name, pd.DataFrame(table))
+        return self
 
 
 def _market_config(plan: RunPlan) -> dict[str, Any]:
@@ -170,6 +182,11 @@ def run_one(plan: RunPlan) -> RunResult:
     RunResult
         ``status`` ``"ok"``, or ``"failed"`` with the error type, message and traceback.
     """
+    return _run(plan)._to_frames()
+
+
+def _run(plan: RunPlan) -> RunResult:
+    """:func:`run_one` with its tables as column dicts (name -> array): no pandas needed."""
     from propensim.markets.engine import build_market
 
     t0 = time.perf_counter()
@@ -179,14 +196,14 @@ def run_one(plan: RunPlan) -> RunResult:
         warnings.simplefilter("always")
         try:
             market = build_market(_market_config(plan), plan.seed, mesa=False)
-            table = market.run(int(plan.rounds))
+            market.advance(int(plan.rounds))
             result.summary = {k: float(v) for k, v in market.summary().items()}
             if collect.get("rounds", True):
-                result.rounds = table
+                result.rounds = market.rounds_columns()
             if int(collect.get("traders_every", 0) or 0) > 0:
-                result.traders = market.traders_frame()
+                result.traders = market.traders_columns()
             if collect.get("ledger", False):
-                result.ledger = market.ledger_frame()
+                result.ledger = market.ledger_columns()
         except Exception as exc:  # a failing run is a result, not a crash of the sweep
             result.status = "failed"
             result.summary = {}
@@ -209,8 +226,17 @@ def _warning_text(w: warnings.WarningMessage) -> str:
 
 
 def run_batch(plans: Sequence[RunPlan]) -> list[RunResult]:
-    """Run several plans one after another (the unit of work sent to a worker)."""
+    """Run several plans one after another (as :func:`run_one` each)."""
     return [run_one(p) for p in plans]
+
+
+def _run_batch(plans: Sequence[RunPlan]) -> list[RunResult]:
+    """The unit of work sent to a worker: :func:`run_batch` with column-dict tables.
+
+    A worker then never imports pandas (about 0.35 s of CPU at start-up, before the first run
+    could begin); the sweep turns the tables into DataFrames when the results arrive.
+    """
+    return [_run(p) for p in plans]
 
 
 # -- backends ------------------------------------------------------------------------------
@@ -277,7 +303,7 @@ class _LocalPool:
             raise
 
     def submit(self, batch):
-        return self._pool.submit(run_batch, batch)
+        return self._pool.submit(_run_batch, batch)
 
     def wait_any(self, futures):
         from concurrent.futures import FIRST_COMPLETED, wait
@@ -296,12 +322,13 @@ class _LocalPool:
 
 
 #: Modules a worker needs for any run; a forkserver imports them once, so each worker starts
-#: in milliseconds instead of paying ~1-2 s of imports (pandas, scipy) itself.
+#: in milliseconds instead of paying their imports itself. Not pandas: workers send their tables
+#: as column dicts (see _run_batch), and the 0.35 s of importing pandas would delay the server,
+#: and with it the first run. Not scipy.optimize (0.16 s): only the efficiency metric of small
+#: markets needs it, and a worker that does imports it then.
 WORKER_PRELOAD = (
     "numpy",
-    "pandas",
     "scipy.sparse.csgraph",
-    "scipy.optimize",
     "propensim.experiments.runner",
     "propensim.markets.engine",
     "propensim.plugins.clearing",
@@ -412,7 +439,7 @@ class _Dask:
         self.n_workers = max(1, sum(self._client.nthreads().values()))
 
     def submit(self, batch):
-        return self._client.submit(run_batch, list(batch), pure=False)
+        return self._client.submit(_run_batch, list(batch), pure=False)
 
     def wait_any(self, futures):
         import distributed
@@ -571,6 +598,7 @@ def _sweep(
                         f"run again into {store.path} to resume",
                         store,
                     ) from None
+            results = [r._to_frames() for r in results]
             batcher.observe(results)
             n_rows = n_failed = 0
             for r in results:

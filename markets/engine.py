@@ -219,55 +219,74 @@ class MarketEngine:
 
     def run(self, rounds: int):
         """Run ``rounds`` rounds and return the round table (see :meth:`rounds_frame`)."""
+        self.advance(rounds)
+        return self.rounds_frame()
+
+    def advance(self, rounds: int) -> None:
+        """Run ``rounds`` rounds (as :meth:`run`, without building the round table)."""
         if isinstance(rounds, bool) or not isinstance(rounds, int | np.integer) or rounds < 0:
             raise ValueError(f"rounds must be a whole number >= 0, got {rounds!r}")
         for _ in range(int(rounds)):
             self.step()
-        return self.rounds_frame()
 
     # -- results ---------------------------------------------------------------------------
+    def rounds_columns(self) -> dict[str, np.ndarray]:
+        """The round table as columns (name -> array; see :meth:`rounds_frame`), without pandas."""
+        out = {"round": np.array([row["round"] for row in self._rows], dtype=np.int64)}
+        for name, _ in self.metrics:
+            out[name] = np.array([row[name] for row in self._rows], dtype=float)
+        return out
+
     def rounds_frame(self):
         """One row per round: ``round`` and one column per metric (a pandas DataFrame)."""
         import pandas as pd
 
-        cols = ["round", *(name for name, _ in self.metrics)]
-        return pd.DataFrame(self._rows, columns=cols)
+        return pd.DataFrame(self.rounds_columns())
+
+    def ledger_columns(self) -> dict[str, np.ndarray]:
+        """The trade ledger as columns (see :meth:`ledger_frame`), without pandas."""
+        if not self._ledger:
+            return {
+                "round": np.zeros(0, np.int64),
+                "buyer": np.zeros(0, np.int64),
+                "seller": np.zeros(0, np.int64),
+                "price": np.zeros(0),
+                "quantity": np.zeros(0, np.int64),
+            }
+        return {
+            "round": np.concatenate([np.full(len(t), r) for r, t in self._ledger]),
+            "buyer": np.concatenate([t.buyer for _, t in self._ledger]),
+            "seller": np.concatenate([t.seller for _, t in self._ledger]),
+            "price": np.concatenate([t.price for _, t in self._ledger]),
+            "quantity": np.concatenate([t.quantity for _, t in self._ledger]),
+        }
 
     def ledger_frame(self):
         """Every kept trade: round, buyer, seller, price, quantity (a pandas DataFrame)."""
         import pandas as pd
 
-        if not self._ledger:
-            return pd.DataFrame(
-                {
-                    "round": np.zeros(0, np.int64),
-                    "buyer": np.zeros(0, np.int64),
-                    "seller": np.zeros(0, np.int64),
-                    "price": np.zeros(0),
-                    "quantity": np.zeros(0, np.int64),
-                }
-            )
-        return pd.DataFrame(
-            {
-                "round": np.concatenate([np.full(len(t), r) for r, t in self._ledger]),
-                "buyer": np.concatenate([t.buyer for _, t in self._ledger]),
-                "seller": np.concatenate([t.seller for _, t in self._ledger]),
-                "price": np.concatenate([t.price for _, t in self._ledger]),
-                "quantity": np.concatenate([t.quantity for _, t in self._ledger]),
+        return pd.DataFrame(self.ledger_columns())
+
+    def traders_columns(self) -> dict[str, np.ndarray]:
+        """The sampled trader states as columns (see :meth:`traders_frame`), without pandas."""
+        if not self._snapshots:
+            pop = self.population
+            return {
+                "round": np.zeros(0, np.int64),
+                "trader": np.zeros(0, np.int64),
+                "mu": np.zeros(0),
+                "sigma": np.zeros(0),
+                "stock": np.zeros(0, pop.stock.dtype),
+                "cash": np.zeros(0),
+                "traded": np.zeros(0, np.int64),
             }
-        )
+        return {k: np.concatenate([s[k] for s in self._snapshots]) for k in self._snapshots[0]}
 
     def traders_frame(self):
         """Sampled trader states (every ``traders_every`` rounds), long format."""
         import pandas as pd
 
-        if not self._snapshots:
-            return pd.DataFrame(
-                columns=["round", "trader", "mu", "sigma", "stock", "cash", "traded"]
-            )
-        return pd.DataFrame(
-            {k: np.concatenate([s[k] for s in self._snapshots]) for k in self._snapshots[0]}
-        )
+        return pd.DataFrame(self.traders_columns())
 
     def summary(self) -> dict[str, float]:
         """One number per metric over the rounds run so far, by each metric's ``aggregate``."""

@@ -1,6 +1,8 @@
 """Runner: one run, batching, failure policy, progress switch, environment pinning."""
 
 import os
+import pickle
+import subprocess
 import sys
 
 import numpy as np
@@ -155,3 +157,29 @@ def test_plans_need_distinct_indices(tmp_path):
     p = make_plans()[:1]
     with pytest.raises(ValueError, match="distinct index"):
         run_plans(p + p, tmp_path / "r", progress=False)
+
+
+def test_worker_runs_send_the_same_tables_without_pandas(tmp_path):
+    # What a worker runs (_run_batch) gives run_one's tables once turned into DataFrames ...
+    plans = make_plans(rounds=4, collect={"traders_every": 2, "ledger": True})[:2]
+    sent = runner._run_batch(plans)
+    assert all(isinstance(r.rounds, dict) for r in sent)  # column dicts on the way back
+    for plan, result in zip(plans, sent, strict=True):
+        expected, got = run_one(plan), result._to_frames()
+        for name in ("rounds", "traders", "ledger"):
+            pd.testing.assert_frame_equal(getattr(got, name), getattr(expected, name))
+    # ... and needs no pandas: a fresh process with only the workers' preload runs them.
+    (tmp_path / "plans.pkl").write_bytes(pickle.dumps(plans))
+    child = (
+        "import importlib, pickle, sys\n"
+        "from propensim.experiments import runner\n"
+        "for m in runner.WORKER_PRELOAD: importlib.import_module(m)\n"
+        f"plans = pickle.loads(open({str(tmp_path / 'plans.pkl')!r}, 'rb').read())\n"
+        "results = runner._run_batch(plans)\n"
+        "assert all(r.ok for r in results), [r.error_message for r in results]\n"
+        "print('pandas' in sys.modules)\n"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", child], capture_output=True, text=True, check=True
+    ).stdout
+    assert out.strip() == "False"
