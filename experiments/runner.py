@@ -359,7 +359,7 @@ def _worker_context(dask: bool = False):
 def prestart_workers(workers: int | None, dask_local: int | None = None) -> bool:
     """Start the preloaded forkserver now, in the background, if worker processes will follow.
 
-    The forkserver spends about a second importing :data:`WORKER_PRELOAD`; started before the
+    The forkserver spends 0.3-0.4 s importing :data:`WORKER_PRELOAD`; started before the
     spec is read and checked, that work overlaps the parent's own start-up instead of delaying
     the first run. Serves the local pool and, with ``dask_local``, the workers of a local Dask
     cluster. Returns True if a forkserver was started (or already ran). Harmless when no
