@@ -411,9 +411,9 @@ class _Dask:
                     "distributed.admin.system-monitor.interval": "5s",
                     "distributed.worker.memory.monitor-interval": "1s",
                 }
-                # Workers forked from our preloaded forkserver (see prestart_workers) start
-                # with distributed, pandas and propensim imported, instead of importing them
-                # in a fresh interpreter each (spawn, Dask's default). A 320-run sweep on two
+                # Workers forked from our preloaded forkserver (see prestart_workers) start with
+                # distributed and propensim imported, instead of importing them (and pandas) in
+                # a fresh interpreter each (spawn, Dask's default). A 320-run sweep on two
                 # workers took 1.24-1.34x the pool's wall clock before these two changes, 1.17x
                 # with the quieter servers alone and 1.02x with both (medians of back-to-back
                 # pairs on a busy 2-core machine; see docs/performance.md).
