@@ -178,7 +178,7 @@ def propensity_round(
         if not normal:
             joint = _joint_of(pop, rows[at], s[at], grid_points)
             return np.asarray(joint.sample_price(rng), dtype=float).reshape(-1)
-        if one_width:  # compiled when available: the same numbers in one pass
+        if one_width:  # compiled when available: the same numbers
             sd = math.sqrt(0.5 * var_b)
             fast = _kernels.prices_one_width(rng, pop.mu, rows[at], s[at], sd, n_rows)
             if fast is not None:
@@ -186,8 +186,7 @@ def propensity_round(
         mu_b, mu_s = pop.mu[rows[at]], pop.mu[s[at]]  # shape: (n_at,)
         if one_width:
             price = mu_b + mu_s
-            price *= 0.5  # shape: (n_at,) joint mean
-            sd = math.sqrt(0.5 * var_b)
+            price *= 0.5  # shape: (n_at,) joint mean; sd as above
         else:
             vb, vs, vsum = var_b[at], var_s[at], var_sum[at]  # shape: (n_at,)
             price = mu_b * vs

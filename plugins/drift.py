@@ -111,7 +111,7 @@ def _ou_coefficients(
         sd *= phi
         sd *= noise * dt  # shape: (n,) 2 D dt phi(2 x) = D dt phi(x) (1 + exp(-x))
         np.sqrt(sd, out=sd)
-    if x.ndim == 1 and x.size and x.min() == x.max():  # one stiffness for all: scalars
+    if x.ndim == 1 and _kernels.is_uniform(x):  # one stiffness for all: scalars
         return float(decay[0]), float(gain[0]), None if sd is None else float(sd[0])
     return decay, gain, sd
 
@@ -144,11 +144,6 @@ def _fits_kernel(mu, *columns) -> bool:
     if not (isinstance(mu, np.ndarray) and mu.ndim == 1 and mu.dtype == np.float64):
         return False
     return all(np.ndim(c) == 0 or np.shape(c) == mu.shape for c in columns)
-
-
-def _uniform(values: np.ndarray) -> bool:
-    """True if a non-empty column holds one value (then a term of it can be a scalar)."""
-    return _kernels.is_uniform(values)
 
 
 def ou_step(
@@ -316,7 +311,7 @@ class AnchorDrift(_ForceRule):
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """``stiffness = strength * gamma / sigma^2``, ``offset = stiffness * value``."""
         pop = state.population
-        if _uniform(pop.gamma) and _uniform(pop.sigma):
+        if _kernels.is_uniform(pop.gamma) and _kernels.is_uniform(pop.sigma):
             # One stiffness for every trader (one width, one scale: the common case): a scalar,
             # so the exact step's coefficients are scalars too. Same values as the array path.
             k = np.float64(pop.gamma[0]) / np.square(np.float64(pop.sigma[0]))
