@@ -23,7 +23,6 @@ _NAMES = {
     "thermal_variance": "oscillator",
     "Population": "population",
     "build_population": "population",
-    "Trader": "population",
     "BUYER": "population",
     "SELLER": "population",
 }

@@ -45,15 +45,6 @@ def check_unit_interval(name: str, value) -> np.ndarray:
     return arr
 
 
-def check_same_length(**arrays: np.ndarray) -> int:
-    """All given 1-D arrays (scalars broadcast) share one length; return it."""
-    lengths = {k: np.shape(v)[0] for k, v in arrays.items() if np.ndim(v) >= 1}
-    if len(set(lengths.values())) > 1:
-        desc = ", ".join(f"{k}={n}" for k, n in lengths.items())
-        raise ValueError(f"array lengths differ ({desc}); all must have the same length")
-    return next(iter(lengths.values()), 1)
-
-
 def _worst(arr: np.ndarray, bad: np.ndarray):
     flat = np.atleast_1d(arr)[np.atleast_1d(bad)]
     return flat[0] if flat.size else arr

@@ -864,3 +864,32 @@ def _interp_cross(grid, values, inner, outer, c):
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(crossing, (vi - c) / (vi - vo), 0.0)
     return gi + frac * (go - gi)
+
+
+#: Built-in families by the names they are registered under (``propensim.curves``).
+_BUILT_IN_FAMILIES = {
+    "normal": NormalCurve,
+    "oscillator": OscillatorCurve,
+    "logistic": LogisticCurve,
+    "tabulated": TabulatedCurve,
+}
+#: Finds a family by name beyond the built-ins; the plugin registry installs itself here when
+#: imported, so third-party families resolve without this layer importing any other.
+_family_resolver = None
+
+
+def set_family_resolver(resolver) -> None:
+    """Install ``resolver(name) -> family class`` for names that are not built in."""
+    global _family_resolver
+    _family_resolver = resolver
+
+
+def curve_family(name: str):
+    """The curve family class registered as ``name`` (built-in, or through the resolver)."""
+    if _family_resolver is not None:
+        return _family_resolver(name)
+    try:
+        return _BUILT_IN_FAMILIES[name]
+    except KeyError:
+        known = ", ".join(sorted(_BUILT_IN_FAMILIES))
+        raise ValueError(f"unknown curve family {name!r}; known: {known}") from None

@@ -1,9 +1,9 @@
-"""The trader population: state as columns, Mesa agents as a view on the rows.
+"""The trader population: state as columns.
 
 A market of a million traders cannot afford a Python object per trader in its inner loop, so the
 state of every trader lives in one numpy array per attribute (:class:`Population`). Rules and
-drifts work on whole columns. :class:`Trader` is a real ``mesa.Agent`` whose attributes read and
-write its row, so ``model.agents``, Mesa's ``DataCollector`` and per-agent plugins still work.
+drifts work on whole columns. The Mesa view on a row (``propensim.markets.model.Trader``, a real
+``mesa.Agent``) lives with the Mesa model in the markets layer: this layer imports no other.
 """
 
 from __future__ import annotations
@@ -135,10 +135,10 @@ class Population:
         The returned curve's parameters have shape ``(len(idx),)``; evaluating it at prices of
         shape ``(m, 1)`` gives an ``(m, len(idx))`` table.
         """
-        from propensim.plugins.registry import get_plugin  # plugins own the family registry
+        from propensim.agents.curves import curve_family
 
         sel = slice(None) if idx is None else idx
-        family = get_plugin("curves", self.curve)
+        family = curve_family(self.curve)
         extra = {k: v[sel] for k, v in self.curve_params.items()}
         return family.from_population(
             mu=self.mu[sel],
@@ -147,6 +147,38 @@ class Population:
             role=self.role[sel],
             **extra,
         )
+
+    # -- settling trades -------------------------------------------------------------------
+    def settle(self, buyer, seller, quantity, buyer_pays, seller_gets=None) -> None:
+        """Move goods seller -> buyer and money buyer -> seller, in place.
+
+        ``stock[seller] -= q``, ``stock[buyer] += q``, ``cash[buyer] -= q * buyer_pays``,
+        ``cash[seller] += q * seller_gets``, in that order, summed over repeated rows
+        (``np.add.at``), so its cost follows the number of trades, not of traders. A buyer with
+        infinite cash keeps infinite cash.
+
+        Goods are conserved: total stock is unchanged. Money is conserved between the two sides
+        when ``seller_gets`` equals ``buyer_pays`` (the default); a per-unit tax or subsidy makes
+        them differ, and the difference ``q * (buyer_pays - seller_gets)`` goes to (or comes
+        from) a third party the market records (the treasury).
+
+        Parameters
+        ----------
+        buyer, seller : ndarray of int64, shape (m,)
+            Rows of each trade's buyer and seller.
+        quantity : ndarray of int64, shape (m,)
+            Units of each trade.
+        buyer_pays, seller_gets : ndarray of float, shape (m,)
+            Price per unit paid by the buyer and received by the seller (price units).
+        """
+        q = quantity
+        if len(q) == 0:
+            return
+        np.add.at(self.stock, buyer, q)
+        np.subtract.at(self.stock, seller, q)
+        pay = q * buyer_pays  # shape: (m,)
+        np.subtract.at(self.cash, buyer, pay)
+        np.add.at(self.cash, seller, pay if seller_gets is None else q * seller_gets)
 
     # -- copies ----------------------------------------------------------------------------
     def copy(self) -> Population:
@@ -303,76 +335,3 @@ def build_population(
         curve=curve,
         curve_params=params,
     )
-
-
-class _Column:
-    """Descriptor: a Trader attribute that reads and writes its row of a population column."""
-
-    def __set_name__(self, owner, name: str) -> None:
-        self.name = name
-
-    def __get__(self, obj, objtype=None):
-        if obj is None:
-            return self
-        return getattr(obj._population, self.name)[obj.index].item()
-
-    def __set__(self, obj, val) -> None:
-        getattr(obj._population, self.name)[obj.index] = val
-
-
-def _trader_class():
-    """Build the Trader class on first use, so importing agents does not import mesa."""
-    import mesa
-
-    class Trader(mesa.Agent):
-        """One trader as a ``mesa.Agent``: a view on row ``index`` of the model's population.
-
-        Attributes ``mu``, ``sigma``, ``activity``, ``gamma``, ``value``, ``cash``, ``stock`` and
-        ``capacity`` read and write the population arrays, so array rules and per-agent code see
-        the same state.
-        """
-
-        mu = _Column()
-        sigma = _Column()
-        activity = _Column()
-        gamma = _Column()
-        value = _Column()
-        cash = _Column()
-        stock = _Column()
-        capacity = _Column()
-
-        def __init__(self, model, population: Population, index: int) -> None:
-            super().__init__(model)
-            self._population = population
-            self.index = int(index)
-
-        @property
-        def role(self) -> str:
-            """``"buyer"`` or ``"seller"``."""
-            return ROLE_NAMES[self._population.role[self.index]]
-
-        @property
-        def is_buyer(self) -> bool:
-            """True for a buyer."""
-            return bool(self._population.role[self.index] == BUYER)
-
-        def curve(self):
-            """The propensity curve of this trader (scalar parameters)."""
-            return self._population.curves(np.array([self.index]))
-
-        def __repr__(self) -> str:
-            return f"Trader(index={self.index}, role={self.role!r}, mu={self.mu:.4g})"
-
-    return Trader
-
-
-_TRADER = None
-
-
-def __getattr__(name: str):
-    global _TRADER
-    if name == "Trader":
-        if _TRADER is None:
-            _TRADER = _trader_class()
-        return _TRADER
-    raise AttributeError(name)

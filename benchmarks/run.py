@@ -186,7 +186,7 @@ def side_by_side(builders, repeats, min_time):
 
 
 def _build_engine(n, clearing, kw, kernels):
-    from propensim.markets.engine import build_market
+    from propensim.markets.build import build_market
 
     # The steady state of a long run: the compiled loops on ("numba"), or numpy alone.
     os.environ["PROPENSIM_KERNELS"] = kernels
@@ -324,9 +324,9 @@ KERNELS_STARTUP_CHILD = r"""
 import os, time
 os.environ["PROPENSIM_KERNELS"] = "numba"
 import numpy as np
-from propensim.markets.engine import build_market
-from propensim.plugins import _kernels
-_kernels.MIN_LENGTH = 1  # a tiny market, so that every kernel is called once
+from propensim.markets.build import build_market
+from propensim.plugins import acceleration
+acceleration.MIN_LENGTH = 1  # a tiny market, so that every kernel is called once
 m = build_market({"population": {"n_buyers": 50, "n_sellers": 50},
                   "drift": {"name": "anchor", "noise": 0.5}}, seed=1, mesa=False)
 t0 = time.perf_counter()
@@ -406,7 +406,7 @@ n, degree, rounds = int(sys.argv[1]), float(sys.argv[2]), int(sys.argv[3])
 config = json.loads(sys.argv[4])
 import os
 os.environ["PROPENSIM_KERNELS"] = sys.argv[5]
-from propensim.markets.engine import build_market
+from propensim.markets.build import build_market
 import numpy as np
 base = rss_mb()
 t0 = time.perf_counter()
@@ -617,7 +617,7 @@ def _propensim_run(spec_path, out, extra, env=None):
 
 def _pilot_rounds(n, target_s):
     """Rounds at which one engine run of ``n`` traders takes about ``target_s`` seconds."""
-    from propensim.markets.engine import build_market
+    from propensim.markets.build import build_market
 
     config = engine_config(n, "propensity")
     t0 = time.perf_counter()
@@ -780,7 +780,7 @@ def bench_scaling(cfg):
 
 
 def _scaling(cfg):
-    from propensim.markets.engine import build_market
+    from propensim.markets.build import build_market
 
     build_market(engine_config(2000, "propensity"), seed=1, mesa=False).run(2)  # load kernels
     rows = []

@@ -7,13 +7,17 @@ from propensim.agents._lazy import lazy_exports
 
 _NAMES = {
     "Market": "model",
-    "build_market": "engine",
+    "Trader": "model",
+    "build_market": "build",
     "MarketEngine": "engine",
-    "build_drift": "engine",
-    "spawn_streams": "engine",
-    "seed_sequence": "engine",
-    "STREAMS": "engine",
+    "build_drift": "build",
+    "build_interventions": "build",
+    "spawn_streams": "build",
+    "seed_sequence": "build",
+    "STREAMS": "build",
     "DEFAULT_METRICS": "engine",
+    "Recorder": "recorder",
+    "PricePolicy": "schedule",
 }
 _NAMES |= {
     "max_surplus": "propensim.plugins.metrics",

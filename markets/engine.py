@@ -1,36 +1,38 @@
-"""The market engine: the round loop over trader columns, a network and three kinds of plugin.
+"""The market engine: a round of named stages over trader columns, a network and plugins.
 
-One round is one pass, with no back and forth::
+One round is one pass, with no back and forth (see :mod:`propensim.markets.stages`)::
 
-    population columns -> clearing rule -> trades (checked, applied) -> drift rule
-        -> metrics -> one row
+    begin_round -> apply_interventions -> clear -> settle -> drift -> measure -> record
 
-Rules read the state and return arrays; the market alone writes state. Randomness comes from one
-seed per market, split into named streams (population, network, clearing, drift, mesa) so that a
-draw added in one place does not reshuffle the others, and a run is a pure function of its
-configuration and seed.
+Rules read the state and return arrays; the stages alone write state, and the market's
+``replace_*`` methods are the one place where its network, population or clearing rule change
+mid-run. Randomness comes from one seed per market, split into named streams (see
+:mod:`propensim.markets.build`) so that a draw added in one place does not reshuffle the others,
+and a run is a pure function of its configuration and seed.
 """
 
 from __future__ import annotations
 
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
-from propensim.agents.population import (
-    BUYER,
-    ROLE_NAMES,
-    SELLER,
-    Population,
-    build_population,
+from propensim.agents.population import BUYER, ROLE_NAMES, SELLER, Population
+from propensim.markets import stages
+from propensim.markets.build import (  # noqa: F401  (build_market etc. also import from here)
+    STREAMS,
+    build_drift,
+    build_market,
+    intervention_streams,
+    seed_sequence,
+    spawn_streams,
 )
-from propensim.plugins import _kernels, registry
-from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
-
-#: Named random streams of one run, in spawn order. New streams are only ever appended.
-STREAMS = ("population", "network", "clearing", "drift", "mesa")
+from propensim.markets.recorder import Recorder
+from propensim.markets.schedule import PricePolicy, Schedule
+from propensim.plugins import registry
+from propensim.plugins.types import MarketState, TradingNetwork
 
 #: Metrics measured when none are named.
 DEFAULT_METRICS = (
@@ -46,27 +48,6 @@ DEFAULT_METRICS = (
     "smith_alpha",
     "energy",
 )
-
-
-def seed_sequence(seed) -> np.random.SeedSequence:
-    """Normalise an int, a sequence of ints, a SeedSequence or None into a SeedSequence."""
-    if isinstance(seed, np.random.SeedSequence):
-        return seed
-    return np.random.SeedSequence(seed)
-
-
-def spawn_streams(seed) -> dict[str, np.random.Generator]:
-    """One independent generator per name in :data:`STREAMS`, derived purely from ``seed``.
-
-    Unlike ``SeedSequence.spawn``, calling this twice with the same seed gives the same streams.
-    """
-    ss = seed_sequence(seed)
-    return {
-        name: np.random.default_rng(
-            np.random.SeedSequence(ss.entropy, spawn_key=(*ss.spawn_key, i))
-        )
-        for i, name in enumerate(STREAMS)
-    }
 
 
 class MarketEngine:
@@ -98,6 +79,11 @@ class MarketEngine:
         Record every trader's state every this many rounds (0: never).
     keep_ledger : bool
         Keep every trade (round, buyer, seller, price, quantity).
+    interventions : sequence, optional
+        Intervention plugin instances, acting in this order (see
+        :mod:`propensim.markets.schedule`); each draws from its own stream.
+    keep_totals : bool
+        Keep each trader's surplus over the run (for who-gains-and-who-loses comparisons).
 
     """
 
@@ -113,6 +99,8 @@ class MarketEngine:
         replenish: bool = True,
         traders_every: int = 0,
         keep_ledger: bool = True,
+        interventions: Sequence = (),
+        keep_totals: bool = False,
     ) -> None:
         streams = spawn_streams(seed)
         if not isinstance(network, TradingNetwork):
@@ -130,25 +118,120 @@ class MarketEngine:
         self.drift = drift
         self.metrics = _resolve_metrics(metrics)
         self.replenish = bool(replenish)
-        self.traders_every = int(traders_every)
-        self.keep_ledger = bool(keep_ledger)
+        self.recorder = Recorder(
+            self.metrics,
+            traders_every=int(traders_every),
+            keep_ledger=bool(keep_ledger),
+            keep_totals=bool(keep_totals),
+        )
         self._rng_clearing = streams["clearing"]
         self._rng_drift = streams["drift"]
-        self._initial_stock = population.stock.copy()
-        self._initial_cash = population.cash.copy()
-        self._is_seller = population.role == SELLER  # shape: (n,) roles never change
-        self._rows: list[dict[str, float]] = []
-        self._ledger: list[tuple[int, Trades]] = []
-        self._snapshots: list[dict[str, np.ndarray]] = []
         self._traders: list | None = None
         self.round = 0
+        self.policy = PricePolicy()
+        self.treasury = 0.0  #: money taken in taxes less subsidies paid, over the run
+        self.present = np.ones(len(population), dtype=bool)  #: False for traders who left
         self.state = MarketState(
             population=population,
             network=network,
             round=0,
             equilibrium_price=_equilibrium_price(population),
         )
+        self._set_derived()
+        # The fixed welfare benchmark: the market as it stands before any intervention.
+        self.state._benchmark_source = (
+            population.role.copy(),
+            population.value.copy(),
+            self.state.remaining.copy(),
+            network,
+        )
+        self.initial_degree = network.degree.copy()
+        interventions = list(interventions or ())
+        self.schedule = Schedule(interventions, intervention_streams(seed, len(interventions)))
+        self.schedule.validate(self)
         _warn_if_no_trade_possible(population, network)
+
+    # -- derived state, and the one place that changes the market ----------------------------
+    def _set_derived(self) -> None:
+        """Everything derived from the population and network; emptied caches."""
+        pop = self.population
+        self._initial_stock = pop.stock.copy()
+        self._initial_cash = pop.cash.copy()
+        self._is_seller = pop.role == SELLER  # shape: (n,)
+        self.state.population = pop
+        self.state.network = self.network
+        self.state.cache.clear()
+        self.state.remaining = stages.units_left(self)
+        self.state.equilibrium_price = _equilibrium_price(pop)
+
+    def replace_network(self, network: TradingNetwork) -> None:
+        """Put a new network in place (same traders) and drop every cache derived from the old.
+
+        Holdings and curves are untouched; the next round clears on the new edges.
+        """
+        if not isinstance(network, TradingNetwork):
+            network = _network_from_graph(network, self.population)
+        if network.n != len(self.population):
+            raise ValueError(
+                f"network has {network.n} traders but population has {len(self.population)}"
+            )
+        self.network = network
+        self.state.network = network
+        self.state.cache.clear()
+
+    def replace_population(self, population: Population, network: TradingNetwork | None = None):
+        """Put a new population in place (rows kept in order; new rows appended) and drop caches.
+
+        The holdings a fresh round restores become those of the new population. A population of
+        a different size needs a ``network`` over its rows.
+        """
+        old_n = len(self.population)
+        n = len(population)
+        if network is None:
+            network = self.network
+        if network.n != n:
+            raise ValueError(f"network has {network.n} traders but population has {n}")
+        if n < old_n:
+            raise ValueError(
+                "a population may grow or keep its size; traders who leave stay as rows"
+            )
+        if np.any(population.role[:old_n] != self.population.role):
+            raise ValueError("replacing the population must keep every existing trader's role")
+        stock0, cash0 = self._initial_stock, self._initial_cash
+        self.population = population
+        self.network = network
+        self._set_derived()
+        if self.replenish:  # existing rows restore what they started with; new rows their own
+            self._initial_stock[:old_n] = stock0
+            self._initial_cash[:old_n] = cash0
+        if n > old_n:
+            self.present = np.concatenate([self.present, np.ones(n - old_n, dtype=bool)])
+            self.initial_degree = np.concatenate(
+                [self.initial_degree, np.zeros(n - old_n, dtype=self.initial_degree.dtype)]
+            )
+        self._population_replaced()
+
+    def _population_replaced(self) -> None:
+        """Hook for views on the population rows (the Mesa model rebuilds its agents)."""
+
+    def replace_clearing(self, rule) -> None:
+        """Clear with ``rule`` from the next clearing on."""
+        self.clearing = rule
+        self.state.cache.clear()
+
+    def remove_traders(self, rows) -> None:
+        """Take traders out of the market: they lose every trading edge (their rows stay)."""
+        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
+        gone = np.zeros(len(self.population), dtype=bool)
+        gone[rows] = True
+        self.present &= ~gone
+        net = self.network
+        self.replace_network(net.keep_edges(~(gone[net.buyer] | gone[net.seller])))
+
+    def restore_traders(self, rows, network: TradingNetwork) -> None:
+        """Bring traders back with the network they return to."""
+        self.present[np.asarray(rows, dtype=np.int64)] = True
+        self.replace_network(network)
 
     @property
     def traders(self) -> list:
@@ -157,64 +240,14 @@ class MarketEngine:
 
     # -- one round -------------------------------------------------------------------------
     def step(self) -> None:
-        """Run one round: clear, record trades, drift, measure."""
-        from propensim.plugins._invariants import apply_trades, check_trades
-
-        pop, state = self.population, self.state
-        _kernels.count_work(len(pop))
-        state.round = self.round
-        remaining = _kernels.start_round(  # one compiled pass when available: same numbers
-            self.replenish,
-            self._initial_stock,
-            self._initial_cash,
-            pop.stock,
-            pop.cash,
-            pop.capacity,
-            self._is_seller,
-        )
-        if remaining is None:
-            if self.replenish:
-                np.copyto(pop.stock, self._initial_stock)
-                np.copyto(pop.cash, self._initial_cash)
-            remaining = pop.capacity.astype(np.int64)  # shape: (n,) a seller also needs stock
-            np.minimum(remaining, pop.stock, out=remaining, where=self._is_seller)
-        state.remaining = remaining
-        if getattr(self.clearing, "per_agent", False):
-            from propensim.plugins.clearing import run_per_agent
-
-            # run_per_agent shrinks a private copy of remaining; state stays as it was
-            trades = run_per_agent(self.clearing, state, self._rng_clearing, self.traders)
-        else:
-            trades = self.clearing.clear(state, self._rng_clearing)
-        check_trades(state, trades)
-        apply_trades(pop, trades)
-        outcome = RoundOutcome.from_trades(trades, len(pop))
-        if self.drift is not None:
-            mu, sigma = self.drift.apply(state, outcome, self._rng_drift)
-            pop.mu[:] = mu
-            pop.sigma[:] = sigma
-        row: dict[str, float] = {"round": self.round}
-        for name, metric in self.metrics:
-            row[name] = float(metric.measure(state, outcome))
-        self._rows.append(row)
-        if self.keep_ledger and len(trades):
-            self._ledger.append((self.round, trades))
-        if self.traders_every and self.round % self.traders_every == 0:
-            self._snapshots.append(
-                {
-                    "round": np.full(len(pop), self.round),
-                    "trader": np.arange(len(pop)),
-                    "mu": pop.mu.copy(),
-                    "sigma": pop.sigma.copy(),
-                    "stock": pop.stock.copy(),
-                    "cash": pop.cash.copy(),
-                    "traded": outcome.traded,
-                }
-            )
-        if len(trades):
-            # Not np.dot: BLAS may wake its threads for long vectors (costly on a shared machine).
-            q = trades.quantity
-            state.last_price = float((trades.price * q).sum() / q.sum())
+        """Run one round: its stages in order (see :mod:`propensim.markets.stages`)."""
+        stages.begin_round(self)
+        stages.apply_interventions(self)
+        trades = stages.clear(self)
+        outcome = stages.settle(self, trades)
+        stages.drift(self, outcome)
+        row = stages.measure(self, outcome)
+        stages.record(self, outcome, row)
         self.round += 1
 
     def run(self, rounds: int):
@@ -229,13 +262,20 @@ class MarketEngine:
         for _ in range(int(rounds)):
             self.step()
 
-    # -- results ---------------------------------------------------------------------------
+    # -- results (kept by the recorder) ------------------------------------------------------
+    @property
+    def traders_every(self) -> int:
+        """Trader snapshots are kept every this many rounds (0: never)."""
+        return self.recorder.traders_every
+
+    @property
+    def keep_ledger(self) -> bool:
+        """Whether every trade is kept."""
+        return self.recorder.keep_ledger
+
     def rounds_columns(self) -> dict[str, np.ndarray]:
         """The round table as columns (name -> array; see :meth:`rounds_frame`), without pandas."""
-        out = {"round": np.array([row["round"] for row in self._rows], dtype=np.int64)}
-        for name, _ in self.metrics:
-            out[name] = np.array([row[name] for row in self._rows], dtype=float)
-        return out
+        return self.recorder.rounds_columns()
 
     def rounds_frame(self):
         """One row per round: ``round`` and one column per metric (a pandas DataFrame)."""
@@ -245,21 +285,7 @@ class MarketEngine:
 
     def ledger_columns(self) -> dict[str, np.ndarray]:
         """The trade ledger as columns (see :meth:`ledger_frame`), without pandas."""
-        if not self._ledger:
-            return {
-                "round": np.zeros(0, np.int64),
-                "buyer": np.zeros(0, np.int64),
-                "seller": np.zeros(0, np.int64),
-                "price": np.zeros(0),
-                "quantity": np.zeros(0, np.int64),
-            }
-        return {
-            "round": np.concatenate([np.full(len(t), r) for r, t in self._ledger]),
-            "buyer": np.concatenate([t.buyer for _, t in self._ledger]),
-            "seller": np.concatenate([t.seller for _, t in self._ledger]),
-            "price": np.concatenate([t.price for _, t in self._ledger]),
-            "quantity": np.concatenate([t.quantity for _, t in self._ledger]),
-        }
+        return self.recorder.ledger_columns()
 
     def ledger_frame(self):
         """Every kept trade: round, buyer, seller, price, quantity (a pandas DataFrame)."""
@@ -269,18 +295,7 @@ class MarketEngine:
 
     def traders_columns(self) -> dict[str, np.ndarray]:
         """The sampled trader states as columns (see :meth:`traders_frame`), without pandas."""
-        if not self._snapshots:
-            pop = self.population
-            return {
-                "round": np.zeros(0, np.int64),
-                "trader": np.zeros(0, np.int64),
-                "mu": np.zeros(0),
-                "sigma": np.zeros(0),
-                "stock": np.zeros(0, pop.stock.dtype),
-                "cash": np.zeros(0),
-                "traded": np.zeros(0, np.int64),
-            }
-        return {k: np.concatenate([s[k] for s in self._snapshots]) for k in self._snapshots[0]}
+        return self.recorder.traders_columns(self.population)
 
     def traders_frame(self):
         """Sampled trader states (every ``traders_every`` rounds), long format."""
@@ -288,13 +303,44 @@ class MarketEngine:
 
         return pd.DataFrame(self.traders_columns())
 
+    def totals_columns(self) -> dict[str, np.ndarray]:
+        """Each trader's surplus over the run with the columns that group traders.
+
+        ``role``; ``degree_quartile`` (1-4, of the trading degree before any intervention);
+        ``left`` (1 for a trader an intervention took out); and every network attribute
+        (e.g. ``region``).
+        """
+        pop = self.population
+        n = len(pop)
+        groups: dict[str, np.ndarray] = {
+            "role": np.array(ROLE_NAMES, dtype=object)[pop.role].astype(str),
+            "degree_quartile": _quartiles(self.initial_degree),
+            "left": (~self.present).astype(np.int64),
+        }
+        for key, values in self.network.attributes.items():
+            if values.shape == (n,):
+                groups[key] = values
+        return self.recorder.totals_columns(groups)
+
     def summary(self) -> dict[str, float]:
         """One number per metric over the rounds run so far, by each metric's ``aggregate``."""
-        out: dict[str, float] = {}
-        for name, metric in self.metrics:
-            vals = np.array([row[name] for row in self._rows], dtype=float)
-            out[name] = _aggregate(vals, getattr(metric, "aggregate", "mean"))
-        return out
+        return self.recorder.summary()
+
+
+def _quartiles(degree: np.ndarray) -> np.ndarray:
+    """Degree quartile (1 = least connected quarter, 4 = best) of each trader.
+
+    Traders of equal degree share the quartile of the first of them in sorted order.
+    """
+    n = degree.size
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    order = np.argsort(degree, kind="stable")
+    sorted_deg = degree[order]
+    start = np.r_[0, np.flatnonzero(np.diff(sorted_deg)) + 1]  # first rank of each degree
+    first_rank = np.empty(n, dtype=np.int64)
+    first_rank[order] = np.repeat(start, np.diff(np.r_[start, n]))
+    return first_rank * 4 // n + 1
 
 
 def _network_from_graph(graph, population: Population) -> TradingNetwork:
@@ -318,19 +364,6 @@ def _network_from_graph(graph, population: Population) -> TradingNetwork:
             f"but population row {differ[0]} is a {ROLE_NAMES[population.role[differ[0]]]}"
         )
     return net
-
-
-def _aggregate(vals: np.ndarray, how: str) -> float:
-    if vals.size == 0:
-        return float("nan")
-    if how == "last":
-        return float(vals[-1])
-    if how == "final_half_mean":
-        vals = vals[vals.size // 2 :]
-    finite = vals[np.isfinite(vals)]
-    if how == "sum":
-        return float(finite.sum())
-    return float(finite.mean()) if finite.size else float("nan")
 
 
 def _resolve_metrics(metrics) -> list[tuple[str, Any]]:
@@ -377,83 +410,3 @@ def _warn_if_no_trade_possible(pop: Population, net: TradingNetwork) -> None:
             RuntimeWarning,
             stacklevel=3,
         )
-
-
-def _plugin_from(kind: str, conf) -> Any:
-    """Build a plugin from a name or a mapping ``{"name": ..., **params}``."""
-    if isinstance(conf, str):
-        return registry.make_plugin(kind, conf)
-    if not isinstance(conf, Mapping) or "name" not in conf:
-        raise ValueError(f"{kind} must be a plugin name or a table with 'name', got {conf!r}")
-    params = {k: v for k, v in conf.items() if k != "name"}
-    return registry.make_plugin(kind, conf["name"], **params)
-
-
-def build_drift(conf):
-    """Build a drift rule from a name, a table, or a table ``{"rules": [...], eta, noise, dt}``.
-
-    Several rules are summed as forces (see :func:`propensim.plugins.drift.combine`).
-    """
-    if conf is None:
-        return None
-    if isinstance(conf, Mapping) and "rules" in conf:
-        from propensim.plugins.drift import combine
-
-        rules = [_plugin_from("drift", r) for r in conf["rules"]]
-        options = {k: v for k, v in conf.items() if k != "rules"}
-        return combine(rules, **options)
-    return _plugin_from("drift", conf)
-
-
-def build_market(config: Mapping, seed=None, *, mesa: bool = True):
-    """Build a market from a plain configuration mapping (the shape a spec file resolves to).
-
-    Parameters
-    ----------
-    config : mapping
-        ``population``: keyword arguments of
-        :func:`~propensim.agents.population.build_population` (``n_buyers`` and ``n_sellers``
-        required); ``network``: a network plugin name or ``{"name": ..., **params}`` (default
-        ``complete``); ``clearing``: a clearing plugin (default ``propensity``); ``drift``: a drift
-        plugin, or ``{"rules": [...], "eta":, "noise":, "dt":}`` for a sum of forces (default none);
-        ``metrics``: list of metric names; ``market``: ``replenish``, ``traders_every``,
-        ``keep_ledger``.
-    seed : int or SeedSequence
-        Root seed of the run; population and network come from their own named streams.
-    mesa : bool
-        Return a :class:`~propensim.markets.model.Market` (a ``mesa.Model``, default) or, if
-        False, the lighter :class:`MarketEngine` (no Mesa import; same results). A per-agent
-        clearing rule always gets a Market, since it needs Mesa agents.
-
-    Returns
-    -------
-    Market or MarketEngine
-    """
-    from propensim.plugins.networks import build_network
-
-    streams = spawn_streams(seed)
-    pop_conf = dict(config.get("population") or {})
-    missing = [k for k in ("n_buyers", "n_sellers") if k not in pop_conf]
-    if missing:
-        raise ValueError(f"population.{missing[0]} is required (a whole number >= 0)")
-    population = build_population(rng=streams["population"], **pop_conf)
-    net_conf = config.get("network", "complete")
-    if isinstance(net_conf, str):
-        net_conf = {"name": net_conf}
-    net_params = {k: v for k, v in net_conf.items() if k != "name"}
-    network = build_network(net_conf["name"], population.role, streams["network"], **net_params)
-    clearing = _plugin_from("clearing", config.get("clearing", "propensity"))
-    drift = build_drift(config.get("drift"))
-    options = dict(config.get("market") or {})
-    cls = MarketEngine
-    if mesa or getattr(clearing, "per_agent", False):
-        from propensim.markets.model import Market as cls
-    return cls(
-        population,
-        network,
-        clearing,
-        drift,
-        config.get("metrics"),
-        seed=seed,
-        **options,
-    )

@@ -1,10 +1,71 @@
-"""The market as a ``mesa.Model``: the engine plus Mesa agents for every trader."""
+"""The market as a ``mesa.Model``, and its traders as ``mesa.Agent`` views on population rows.
+
+Mesa lives here only: the array engine and the other layers never import it.
+"""
 
 from __future__ import annotations
 
 import mesa
+import numpy as np
 
-from propensim.markets.engine import MarketEngine, spawn_streams
+from propensim.agents.population import BUYER, ROLE_NAMES, Population
+from propensim.markets.build import spawn_streams
+from propensim.markets.engine import MarketEngine
+
+
+class _Column:
+    """Descriptor: a Trader attribute that reads and writes its row of a population column."""
+
+    def __set_name__(self, owner, name: str) -> None:
+        self.name = name
+
+    def __get__(self, obj, objtype=None):
+        if obj is None:
+            return self
+        return getattr(obj._population, self.name)[obj.index].item()
+
+    def __set__(self, obj, val) -> None:
+        getattr(obj._population, self.name)[obj.index] = val
+
+
+class Trader(mesa.Agent):
+    """One trader as a ``mesa.Agent``: a view on row ``index`` of the model's population.
+
+    Attributes ``mu``, ``sigma``, ``activity``, ``gamma``, ``value``, ``cash``, ``stock`` and
+    ``capacity`` read and write the population arrays, so array rules and per-agent code see
+    the same state.
+    """
+
+    mu = _Column()
+    sigma = _Column()
+    activity = _Column()
+    gamma = _Column()
+    value = _Column()
+    cash = _Column()
+    stock = _Column()
+    capacity = _Column()
+
+    def __init__(self, model, population: Population, index: int) -> None:
+        super().__init__(model)
+        self._population = population
+        self.index = int(index)
+
+    @property
+    def role(self) -> str:
+        """``"buyer"`` or ``"seller"``."""
+        return ROLE_NAMES[self._population.role[self.index]]
+
+    @property
+    def is_buyer(self) -> bool:
+        """True for a buyer."""
+        return bool(self._population.role[self.index] == BUYER)
+
+    def curve(self):
+        """The propensity curve of this trader (scalar parameters)."""
+        return self._population.curves(np.array([self.index]))
+
+    def __repr__(self) -> str:
+        return f"Trader(index={self.index}, role={self.role!r}, mu={self.mu:.4g})"
 
 
 class Market(MarketEngine, mesa.Model):
@@ -47,8 +108,13 @@ class Market(MarketEngine, mesa.Model):
         self._materialise()
         return self._traders
 
+    def _population_replaced(self) -> None:
+        """Agents are views on rows: after a new population, build them again when asked."""
+        if self._traders is not None:
+            for agent in self._traders:
+                agent.remove()
+            self._traders = None
+
     def _materialise(self) -> None:
         if self._traders is None:
-            from propensim.agents.population import Trader
-
             self._traders = [Trader(self, self.population, i) for i in range(len(self.population))]

@@ -16,7 +16,7 @@ import math
 import numpy as np
 
 from propensim.agents.population import BUYER, Population
-from propensim.plugins._greedy import greedy_accept
+from propensim.plugins.sequential_accept import greedy_accept
 from propensim.plugins.types import MarketState, Trades, TradingNetwork
 
 
@@ -36,6 +36,26 @@ def reservation_prices(pop: Population, threshold: float) -> np.ndarray:
     half = pop.sigma * np.sqrt(2.0 * np.log(ratio))  # shape: (n,) half-width at the threshold
     quote = np.where(pop.role == BUYER, pop.mu + half, pop.mu - half)
     return np.where(reach, quote, np.nan)
+
+
+def bounded_quotes(state: MarketState, quote: np.ndarray) -> np.ndarray:
+    """Quotes under the price bounds in force (MODEL.md section 9); unchanged without bounds.
+
+    A buyer bids no more than the ceiling and stays out if its bid is below the floor; a seller
+    asks no less than the floor and stays out if its ask is above the ceiling. In a call auction
+    this gives the textbook ceiling: when the clearing price would exceed it, the price is the
+    ceiling, sellers who ask at most the ceiling sell, and buyers at the ceiling (all those
+    willing to pay it) are rationed by the auction's random tie-break.
+    """
+    if not state.price_bounded:
+        return quote
+    lo, hi = state.price_floor, state.price_ceiling
+    is_buyer = state.population.role == BUYER
+    with np.errstate(invalid="ignore"):
+        out = np.where(is_buyer, np.minimum(quote, hi), np.maximum(quote, lo))
+        out = np.where(is_buyer & (quote < lo), np.nan, out)
+        out = np.where(~is_buyer & (quote > hi), np.nan, out)
+    return out
 
 
 def _aggregate(b: np.ndarray, s: np.ndarray, price: np.ndarray, n: int) -> Trades:
@@ -289,6 +309,8 @@ def double_auction(
     # The mechanism is sequential: each quote meets the book left by all earlier quotes, so the
     # arrivals are a Python loop (lean: every random number was drawn above).
     who_l, bid_l, quote_l = who.tolist(), is_bid.tolist(), quote.tolist()
+    bounded = state.price_bounded  # MODEL.md section 9: quotes outside the bounds are refused
+    floor, ceiling = state.price_floor, state.price_ceiling
     for t in range(n_quotes):
         i = who_l[t]
         if rem_l[i] <= 0:
@@ -300,6 +322,9 @@ def double_auction(
         if bid_l[t]:
             if x > cash_l[i]:
                 x = cash_l[i]
+        if bounded and not floor <= x <= ceiling:
+            continue
+        if bid_l[t]:
             best = math.inf
             for j in sellers_of[b_ptr[i] : b_ptr[i + 1]]:  # lowest ask, first in row order
                 if posted[j] > fresh and standing[j] < best:

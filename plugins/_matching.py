@@ -4,8 +4,8 @@ Array path: every buyer with units left meets ``meetings`` sellers drawn uniform
 network neighbours; a meeting trades with probability equal to the joint curve's peak, at a price
 drawn from the normalised joint curve. Successful meetings are then accepted in the order
 (random buyer order, meeting number) while both sides have units left, by
-:func:`~propensim.plugins._greedy.greedy_accept`; so the result has the same distribution as a
-trader-by-trader loop (:func:`pair_meeting` is that loop's one-pair step).
+:func:`~propensim.plugins.sequential_accept.greedy_accept`; so the result has the same
+distribution as a trader-by-trader loop (:func:`pair_meeting` is that loop's one-pair step).
 
 References
 ----------
@@ -22,8 +22,8 @@ import math
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER, Population
-from propensim.plugins import _kernels
-from propensim.plugins._greedy import greedy_accept
+from propensim.plugins import acceleration
+from propensim.plugins.sequential_accept import greedy_accept
 from propensim.plugins.types import MarketState, Trades
 
 
@@ -129,15 +129,21 @@ def propensity_round(
             rows, start, deg = (np.repeat(x, meetings) for x in (rows, start, deg))
         own = rows
     normal = pop.curve == "normal"
+    bounded = state.price_bounded
+    if bounded and not normal:
+        raise ValueError(
+            "price bounds with propensity matching need the normal curve family "
+            f"(this population's curves are {pop.curve!r})"
+        )
     sigma = pop.sigma
-    one_width = normal and _kernels.is_uniform(sigma)
+    one_width = normal and acceleration.is_uniform(sigma)
     # Bromiley 2003: the joint peak is exp(-gap^2 / (2 var_sum)) times the heights. With one
     # width for every trader (the default, and kept by drift rules that leave widths alone) the
     # variances are scalars and broadcast.
     var_b = float(sigma[0]) ** 2 if one_width else None
     fast = None
-    if one_width and isinstance(own, slice):  # one compiled pass when available: same numbers
-        fast = _kernels.meet_one_width(
+    if one_width and isinstance(own, slice) and not bounded:  # compiled when available
+        fast = acceleration.meet_one_width(
             rng, deg, start, net.seller, pop.mu, own.start, -0.5 / (var_b + var_b)
         )
     if fast is not None:
@@ -164,6 +170,8 @@ def propensity_round(
     if normal and pop.activity.min() < 1.0:  # heights of 1 (the default) need no product
         peak *= pop.activity[own]
         peak *= pop.activity[s]  # shape: (k,) joint peak a_b a_s exp(-gap^2 / (2 var_sum))
+    if bounded:  # MODEL.md section 9: the chance is the largest J over the allowed prices
+        peak *= _bounded_share(pop, own, s, var_b, state.price_floor, state.price_ceiling)
     if lonely is not None and lonely.size:
         peak[lonely] = 0.0  # no partner, no meeting
     traded = u < peak if threshold is None else peak >= threshold  # shape: (k,) agreed
@@ -175,12 +183,15 @@ def propensity_round(
 
     def prices(at: np.ndarray) -> np.ndarray:
         """One price per agreed meeting ``at`` (positions), drawn from its joint curve."""
+        if bounded:
+            mean, sd = _joint_normal(pop, rows[at], s[at])
+            return _truncated_normal(rng, mean, sd, state.price_floor, state.price_ceiling)
         if not normal:
             joint = _joint_of(pop, rows[at], s[at], grid_points)
             return np.asarray(joint.sample_price(rng), dtype=float).reshape(-1)
         if one_width:  # compiled when available: the same numbers
             sd = math.sqrt(0.5 * var_b)
-            fast = _kernels.prices_one_width(rng, pop.mu, rows[at], s[at], sd, n_rows)
+            fast = acceleration.prices_one_width(rng, pop.mu, rows[at], s[at], sd, n_rows)
             if fast is not None:
                 return fast
         mu_b, mu_s = pop.mu[rows[at]], pop.mu[s[at]]  # shape: (n_at,)
@@ -221,6 +232,35 @@ def propensity_round(
     price = prices(take) if price is None else price[accepted]
     ones = np.ones(take.size, dtype=np.int64)
     return Trades(rows[take], s[take], price, ones, edge[take])
+
+
+def _joint_normal(pop: Population, b: np.ndarray, s: np.ndarray):
+    """Mean and sd of the normalised joint curve of normal pairs (Bromiley 2003)."""
+    vb, vs = np.square(pop.sigma[b]), np.square(pop.sigma[s])
+    vsum = vb + vs
+    return (pop.mu[b] * vs + pop.mu[s] * vb) / vsum, np.sqrt(vb * vs / vsum)
+
+
+def _bounded_share(pop, own, s, var_b, floor: float, ceiling: float) -> np.ndarray:
+    """``max J over [floor, ceiling] / max J`` for each meeting (normal curves).
+
+    ``J`` is a scaled normal with mean ``m`` and sd ``d``: its largest value on the interval is at
+    ``clip(m, floor, ceiling)``, so the share is ``exp(-(clip(m) - m)^2 / (2 d^2))``.
+    """
+    b = np.arange(own.start, own.stop) if isinstance(own, slice) else own
+    mean, sd = _joint_normal(pop, b, s)
+    gap = np.clip(mean, floor, ceiling) - mean
+    return np.exp(-(gap * gap) / (2.0 * sd * sd))
+
+
+def _truncated_normal(rng, mean, sd, floor: float, ceiling: float) -> np.ndarray:
+    """Draws of N(mean, sd^2) restricted to [floor, ceiling] (inverse CDF, stable in the tails)."""
+    from scipy.stats import truncnorm
+
+    a = (floor - mean) / sd
+    b = (ceiling - mean) / sd
+    x = truncnorm.rvs(a, b, loc=mean, scale=sd, size=mean.shape, random_state=rng)
+    return np.clip(np.asarray(x, dtype=float), floor, ceiling)
 
 
 def _turn_keys(

@@ -60,7 +60,7 @@ def compiled(length: int):
     module = _state["module"]
     if module is None:
         try:
-            from propensim.plugins import _compiled as module
+            from propensim.plugins import numba_loops as module
         except Exception:  # numba missing or broken: numpy does the same work
             _state["failed"] = True
             return None
@@ -96,8 +96,8 @@ def _strided(values) -> tuple[np.ndarray, int]:
     return np.ascontiguousarray(arr), 1
 
 
-def apply_trades(trades, stock, cash) -> bool:
-    """Compiled :func:`~propensim.plugins._invariants.apply_trades` (same order, same sums).
+def settle(buyer, seller, quantity, buyer_pays, seller_gets, stock, cash) -> bool:
+    """Compiled :meth:`~propensim.agents.population.Population.settle` (same order, same sums).
 
     Returns False, doing nothing, when not compiled here.
     """
@@ -105,15 +105,15 @@ def apply_trades(trades, stock, cash) -> bool:
     module = compiled(n)
     if module is None or stock.dtype != np.int64 or cash.dtype != np.float64 or cash.shape != (n,):
         return False
-    b, s = trades.buyer, trades.seller
+    b, s = buyer, seller
     if b.size and (min(b.min(), s.min()) < 0 or max(b.max(), s.max()) >= n):
         return False  # no bounds checks in the loop: numpy's ufunc.at raises the IndexError
-    module.apply_trades(b, s, trades.quantity, trades.price, stock, cash)
+    module.settle(b, s, quantity, buyer_pays, seller_gets, stock, cash)
     return True
 
 
 def meet_one_width(rng, deg, start, seller, mu, first_row, scale):
-    """Compiled first half of a propensity-matching round (see ``_compiled.meet_one_width``).
+    """Compiled first half of a propensity-matching round (see ``numba_loops.meet_one_width``).
 
     Returns ``(frac, partner, edge, arg)`` or None when not compiled here.
     """
@@ -132,8 +132,10 @@ def meet_one_width(rng, deg, start, seller, mu, first_row, scale):
 
 
 def prices_one_width(rng, mu, buyer, seller, sd: float, rows: int):
-    """Joint-curve prices for traders of one width (see ``_compiled.prices_one_width``);
-    None when not compiled here."""
+    """Joint-curve prices for traders of one width, or None when not compiled here.
+
+    See ``numba_loops.prices_one_width``.
+    """
     module = compiled(rows)
     if module is None:
         return None
@@ -153,8 +155,10 @@ def is_uniform(values: np.ndarray) -> bool:
 
 
 def start_round(replenish, stock0, cash0, stock, cash, capacity, is_seller):
-    """The units each trader may trade this round, after restoring stock and cash when
-    ``replenish`` (see ``_compiled.start_round``); None when not compiled here."""
+    """The units each trader may trade this round (None when not compiled here).
+
+    Restores stock and cash first when ``replenish`` (see ``numba_loops.start_round``).
+    """
     n = stock.shape[0]
     module = compiled(n)
     columns = (stock0, cash0, cash, capacity, is_seller)

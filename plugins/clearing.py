@@ -15,7 +15,7 @@ Five rules, each a :class:`~propensim.plugins.contracts.ClearingRule` registered
 
 Every rule reads ``state`` and draws only from ``rng``; none trades across a missing edge, beyond
 ``state.remaining`` or beyond a buyer's finite cash (checked by
-:func:`~propensim.plugins._invariants.check_trades` and the conformance kit
+:func:`~propensim.plugins.trade_checks.check_trades` and the conformance kit
 :mod:`propensim.plugins.testing`). An empty network, or quotes that never cross, give no trades.
 """
 
@@ -28,6 +28,7 @@ import numpy as np
 from propensim.agents.population import BUYER
 from propensim.plugins._auctions import (
     bargaining,
+    bounded_quotes,
     call_auction,
     double_auction,
     reservation_prices,
@@ -113,6 +114,7 @@ class PropensityMatching:
     description: ClassVar[str] = (
         "propensity matching: meetings trade with chance = joint curve peak, price drawn from it"
     )
+    honours_price_bounds: ClassVar[bool] = True
 
     def __init__(
         self, meetings: int = 1, threshold: float | None = None, grid_points: int = 257
@@ -239,6 +241,7 @@ class CallAuction:
     description: ClassVar[str] = (
         "uniform-price call auction per connected part: one k-rule price where bids and asks cross"
     )
+    honours_price_bounds: ClassVar[bool] = True
 
     def __init__(self, k: float = 0.5, quotes: str = "reservation", threshold: float = 0.5) -> None:
         self.k = k
@@ -263,6 +266,7 @@ class CallAuction:
             quote = pop.value
         else:
             quote = reservation_prices(pop, float(self.threshold))
+        quote = bounded_quotes(state, quote)
         trades, self.unmatched_ = call_auction(state, quote, float(self.k), rng)
         return trades
 
@@ -308,6 +312,7 @@ class DoubleAuction:
     description: ClassVar[str] = (
         "continuous double auction with a standing book; zero-intelligence or curve-drawn quotes"
     )
+    honours_price_bounds: ClassVar[bool] = True
 
     def __init__(
         self,
@@ -360,7 +365,7 @@ class BilateralBargaining:
 
     Notes
     -----
-    Cost: O(edges) array work plus :func:`~propensim.plugins._greedy.greedy_accept`.
+    Cost: O(edges) array work plus :func:`~propensim.plugins.sequential_accept.greedy_accept`.
 
     References
     ----------
@@ -371,6 +376,7 @@ class BilateralBargaining:
     description: ClassVar[str] = (
         "bilateral bargaining: neighbours whose reservation prices cross trade at the midpoint"
     )
+    honours_price_bounds: ClassVar[bool] = True
 
     def __init__(self, threshold: float = 0.5) -> None:
         self.threshold = threshold
@@ -382,4 +388,4 @@ class BilateralBargaining:
     def clear(self, state: MarketState, rng: np.random.Generator) -> Trades:
         """Return this round's trades (one row per pair, with a quantity)."""
         quote = reservation_prices(state.population, float(self.threshold))
-        return bargaining(state, quote, rng)
+        return bargaining(state, bounded_quotes(state, quote), rng)

@@ -45,7 +45,7 @@ from typing import ClassVar
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER
-from propensim.plugins import _kernels
+from propensim.plugins import acceleration
 from propensim.plugins.types import MarketState, RoundOutcome
 
 __all__ = [
@@ -111,7 +111,7 @@ def _ou_coefficients(
         sd *= phi
         sd *= noise * dt  # shape: (n,) 2 D dt phi(2 x) = D dt phi(x) (1 + exp(-x))
         np.sqrt(sd, out=sd)
-    if x.ndim == 1 and _kernels.is_uniform(x):  # one stiffness for all: scalars
+    if x.ndim == 1 and acceleration.is_uniform(x):  # one stiffness for all: scalars
         return float(decay[0]), float(gain[0]), None if sd is None else float(sd[0])
     return decay, gain, sd
 
@@ -119,13 +119,13 @@ def _ou_coefficients(
 def _ou_apply(mu, offset, coefficients, rng) -> np.ndarray:
     """``mu decay + offset gain + sd xi`` (one standard normal per trader when sd is set).
 
-    Large markets take this step in one compiled pass (:mod:`propensim.plugins._kernels`):
+    Large markets take this step in one compiled pass (:mod:`propensim.plugins.acceleration`):
     the same numbers, drawn from ``rng`` in the same order.
     """
     decay, gain, sd = coefficients
     if sd is not None and rng is not None and _fits_kernel(mu, offset, decay, gain, sd):
         out = np.empty(mu.shape)  # shape: (n,)
-        if _kernels.ou_apply(mu, offset, decay, gain, sd, rng, out):  # same numbers, one pass
+        if acceleration.ou_apply(mu, offset, decay, gain, sd, rng, out):  # same numbers, one pass
             return out
     out = np.multiply(mu, decay)  # shape: (n,)
     tmp = np.empty_like(out)  # shape: (n,) for the temporaries
@@ -311,7 +311,7 @@ class AnchorDrift(_ForceRule):
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """``stiffness = strength * gamma / sigma^2``, ``offset = stiffness * value``."""
         pop = state.population
-        if _kernels.is_uniform(pop.gamma) and _kernels.is_uniform(pop.sigma):
+        if acceleration.is_uniform(pop.gamma) and acceleration.is_uniform(pop.sigma):
             # One stiffness for every trader (one width, one scale: the common case): a scalar,
             # so the exact step's coefficients are scalars too. Same values as the array path.
             k = np.float64(pop.gamma[0]) / np.square(np.float64(pop.sigma[0]))
@@ -502,12 +502,15 @@ def _column(values, n: int) -> np.ndarray:
 
 
 class DriftSum:
-    """Several force rules acting at once, stepped exactly as one Ornstein-Uhlenbeck process.
+    """Several drift rules acting at once: forces stepped exactly as one Ornstein-Uhlenbeck process.
 
-    Sums the ``terms`` of every rule into a total stiffness ``k`` and offset ``c`` and takes one
-    exact step (see the module docstring and :func:`ou_step`); the rules' own ``eta``, ``noise``
-    and ``dt`` are ignored in favour of the sum's. Then applies each rule's ``update_sigma`` in
-    order. A ``DriftSum`` has ``terms`` and ``update_sigma`` itself, so sums nest.
+    Sums the ``terms`` of every force rule into a total stiffness ``k`` and offset ``c`` and takes
+    one exact step (see the module docstring and :func:`ou_step`) over ``dt`` times the state's
+    ``elapsed`` time; the rules' own ``eta``, ``noise`` and ``dt`` are ignored in favour of the
+    sum's. Then applies each force rule's ``update_sigma`` in order. Finally each rule that has
+    only ``apply`` (any :class:`~propensim.plugins.contracts.DriftRule`, e.g. a student's
+    per-agent rule) is applied in order to the curves left by the step before it: forces add,
+    other rules compose. A ``DriftSum`` has ``terms`` and ``update_sigma`` itself, so sums nest.
 
     Parameters
     ----------
@@ -541,10 +544,12 @@ class DriftSum:
         """Raise ValueError for bad parameters or a rule that cannot be summed."""
         _check_langevin("DriftSum", self.eta, self.noise, self.dt)
         for rule in self.rules:
-            if not callable(getattr(rule, "terms", None)):
+            if not callable(getattr(rule, "terms", None)) and not callable(
+                getattr(rule, "apply", None)
+            ):
                 raise ValueError(
-                    f"DriftSum: rules must be force rules with a terms() method; "
-                    f"{type(rule).__name__} has none"
+                    f"DriftSum: every rule needs terms() (a force) or apply() (a drift rule); "
+                    f"{type(rule).__name__} has neither"
                 )
             check = getattr(rule, "check", None)
             if callable(check):
@@ -556,18 +561,23 @@ class DriftSum:
         k, c = self._summed_terms(state, outcome)
         return _column(k, n), _column(c, n)
 
+    def _forces(self) -> list:
+        """The rules that are forces (have ``terms``), in order."""
+        return [r for r in self.rules if callable(getattr(r, "terms", None))]
+
     def _summed_terms(self, state: MarketState, outcome: RoundOutcome):
         """Total ``(stiffness, offset)``: float scalars where every rule gives one, else (n,).
 
         A scalar stiffness (one for every trader) makes the exact step's coefficients scalars.
         """
         n = len(state.population)
-        if isinstance(self.rules, list | tuple) and len(self.rules) == 1:  # no sum to build
-            k, c = self.rules[0].terms(state, outcome)
+        forces = self._forces()
+        if len(forces) == 1:  # no sum to build
+            k, c = forces[0].terms(state, outcome)
             k, c = np.asarray(k, dtype=float), np.asarray(c, dtype=float)
             return (k if k.ndim == 0 else _column(k, n)), (c if c.ndim == 0 else _column(c, n))
         stiffness = offset = np.float64(0.0)
-        for rule in self.rules:  # summed in rule order: scalars stay scalars, columns broadcast
+        for rule in forces:  # summed in rule order: scalars stay scalars, columns broadcast
             k, c = rule.terms(state, outcome)
             stiffness = stiffness + np.asarray(k, dtype=float)
             offset = offset + np.asarray(c, dtype=float)
@@ -576,8 +586,8 @@ class DriftSum:
     def update_sigma(
         self, state: MarketState, outcome: RoundOutcome, sigma: np.ndarray
     ) -> np.ndarray:
-        """Each rule's width update, in order."""
-        for rule in self.rules:
+        """Each force rule's width update, in order."""
+        for rule in self._forces():
             update = getattr(rule, "update_sigma", None)
             if callable(update):
                 sigma = update(state, outcome, sigma)
@@ -590,7 +600,10 @@ class DriftSum:
         self.check()
         pop = state.population
         stiffness, offset = self._summed_terms(state, outcome)
-        params = (float(self.eta), float(self.noise), float(self.dt))
+        # The step covers the time since the last one: one round (``dt``) in round mode, the
+        # elapsed time in event mode (MarketState.elapsed, in rounds).
+        elapsed = float(getattr(state, "elapsed", 1.0))
+        params = (float(self.eta), float(self.noise), float(self.dt) * elapsed)
         # The step's coefficients depend only on the stiffness, which stays the same from round
         # to round unless a rule moves it (e.g. widths adapting): reuse them while it does.
         # A scalar stiffness (one for every trader) gives scalar coefficients, computed from
@@ -611,6 +624,9 @@ class DriftSum:
         sigma = np.asarray(self.update_sigma(state, outcome, pop.sigma.copy()), dtype=float)
         if sigma is pop.sigma:  # a rule handed back the population's own column
             sigma = sigma.copy()
+        for rule in self.rules:  # rules with only apply(): in order, each on the last's result
+            if not callable(getattr(rule, "terms", None)):
+                mu, sigma = _apply_after(rule, state, outcome, rng, mu, sigma)
         return mu, sigma
 
     def __repr__(self) -> str:
@@ -618,6 +634,21 @@ class DriftSum:
             f"DriftSum(rules={list(self.rules)!r}, eta={self.eta!r}, noise={self.noise!r}, "
             f"dt={self.dt!r})"
         )
+
+
+def _apply_after(rule, state: MarketState, outcome: RoundOutcome, rng, mu, sigma):
+    """Apply a rule that has only ``apply`` to the curves ``(mu, sigma)`` left by earlier rules.
+
+    The rule sees a copy of the population holding those curves (so it cannot touch the real
+    one) and the same outcome; it returns the next ``(mu, sigma)``.
+    """
+    import dataclasses
+
+    view = dataclasses.replace(
+        state, population=dataclasses.replace(state.population, mu=mu, sigma=sigma)
+    )
+    new_mu, new_sigma = rule.apply(view, outcome, rng)
+    return np.asarray(new_mu, dtype=float), np.asarray(new_sigma, dtype=float)
 
 
 def combine(rules: Iterable, *, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0) -> DriftSum:

@@ -20,7 +20,7 @@ from typing import ClassVar
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER
-from propensim.plugins import _surplus
+from propensim.plugins import welfare
 from propensim.plugins.types import MarketState, RoundOutcome
 
 __all__ = [
@@ -35,6 +35,14 @@ __all__ = [
     "SurplusGini",
     "Volume",
     "VolumeWeightedPrice",
+    "TotalSurplus",
+    "TaxRevenue",
+    "DeadweightLoss",
+    "FixedEfficiency",
+    "UnmetDemand",
+    "UnmetSupply",
+    "BuyerPrice",
+    "SellerPrice",
     "competitive_equilibrium",
     "gini",
     "max_surplus",
@@ -106,7 +114,7 @@ def max_surplus(
     >>> max_surplus([10, 8], [5, 7], edges=([1], [0]))
     3.0
     """
-    return _surplus.max_surplus(
+    return welfare.max_surplus(
         values, costs, edges, units_b=units_b, units_s=units_s, method=method
     )
 
@@ -139,7 +147,7 @@ def competitive_equilibrium(values, costs) -> tuple[int, float, float]:
     >>> competitive_equilibrium([10, 9, 8, 7], [6, 7, 8, 9])
     (3, 8.0, 8.0)
     """
-    return _surplus.competitive_equilibrium(values, costs)
+    return welfare.competitive_equilibrium(values, costs)
 
 
 def gini(x) -> float:
@@ -158,15 +166,21 @@ def gini(x) -> float:
     >>> gini([1, 1, 1, 1]), gini([0, 0, 0, 1])
     (0.0, 0.75)
     """
-    return _surplus.gini(x)
+    return welfare.gini(x)
 
 
 def trade_surplus(state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
-    """Buyer and seller surplus of each trade, ``((v_b - p) q, (p - c_s) q)``, shape (n_trades,)."""
+    """Buyer and seller surplus of each trade, shape (n_trades,) each.
+
+    ``((v_b - p_b) q, (p_s - c_s) q)`` with ``p_b`` what the buyer paid and ``p_s`` what the
+    seller received per unit (both the trade price unless a tax or subsidy is in force).
+    """
     tr = outcome.trades
     value = state.population.value
     q = tr.quantity.astype(float)
-    return (value[tr.buyer] - tr.price) * q, (tr.price - value[tr.seller]) * q
+    paid = tr.price if outcome.buyer_pays is None else outcome.buyer_pays
+    got = tr.price if outcome.seller_gets is None else outcome.seller_gets
+    return (value[tr.buyer] - paid) * q, (got - value[tr.seller]) * q
 
 
 def _weighted_prices(outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
@@ -427,3 +441,159 @@ class EntropicEnergy:
         else:
             energy = np.asarray(pop.curves().energy(pop.mu, pop.value, pop.gamma), dtype=float)
         return float(np.sum(energy))
+
+
+# -- welfare under interventions (MODEL.md section 9) -------------------------------------------
+def fixed_benchmark(state: MarketState) -> float:
+    """Largest achievable surplus per round of the market before any intervention (cached).
+
+    The market leaves the pre-intervention roles, values, units and network in
+    ``state._benchmark_source``; without it (a state built by hand) the current market is used.
+    Price units per round.
+    """
+    if np.isfinite(state.benchmark_surplus):
+        return state.benchmark_surplus
+    source = getattr(state, "_benchmark_source", None)
+    if source is None:
+        pop = state.population
+        source = (pop.role, pop.value, state.remaining, state.network)
+    role, value, units, net = source
+    buyers = np.flatnonzero(role == BUYER)
+    sellers = np.flatnonzero(role != BUYER)
+    edges = None
+    if net is not None and not net.complete:
+        slot = np.empty(role.size, dtype=np.int64)
+        slot[buyers] = np.arange(buyers.size)
+        slot[sellers] = np.arange(sellers.size)
+        edges = (slot[net.buyer], slot[net.seller])
+    best = max_surplus(
+        value[buyers], value[sellers], edges, units_b=units[buyers], units_s=units[sellers]
+    )
+    state.benchmark_surplus = float(best)
+    return state.benchmark_surplus
+
+
+def _total_surplus(state: MarketState, outcome: RoundOutcome) -> float:
+    gain_b, gain_s = trade_surplus(state, outcome)
+    return float(gain_b.sum() + gain_s.sum()) + float(outcome.tax_revenue)
+
+
+class TotalSurplus:
+    """Buyers' plus sellers' surplus plus tax revenue less subsidy cost, this round.
+
+    The treasury's take is a transfer, not a loss: a tax moves surplus from traders to the
+    treasury and loses only the trades it prevents (MODEL.md section 9).
+    """
+
+    description: ClassVar[str] = "buyers' + sellers' surplus + tax revenue - subsidy cost"
+    aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "higher"
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Price units."""
+        return _total_surplus(state, outcome)
+
+
+class TaxRevenue:
+    """Taxes collected less subsidies paid this round (price units; negative: net subsidy)."""
+
+    description: ClassVar[str] = "taxes collected less subsidies paid in the round"
+    aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = None
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Price units."""
+        return float(outcome.tax_revenue)
+
+
+class DeadweightLoss:
+    """The fixed benchmark's surplus less this round's total surplus (price units).
+
+    Against the market as it stood before any intervention, so a tax or a removal shows the
+    surplus it destroys (a tax's revenue is counted as surplus, not as a loss).
+    """
+
+    description: ClassVar[str] = "largest surplus before any intervention - total surplus"
+    aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "lower"
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Price units."""
+        return fixed_benchmark(state) - _total_surplus(state, outcome)
+
+
+class FixedEfficiency:
+    """Total surplus over the largest achievable surplus of the market before any intervention.
+
+    ``efficiency`` compares with the market as it now is, so a tax (costs shifted) or fewer
+    traders (fewer possible pairs) can look like a gain there; against this fixed benchmark
+    they cannot (MODEL.md section 9). NaN when the benchmark is not positive.
+    """
+
+    description: ClassVar[str] = "total surplus / largest surplus before any intervention"
+    aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = "higher"
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """A fraction (1 = the pre-intervention maximum)."""
+        best = fixed_benchmark(state)
+        if not best > 0:
+            return _NAN
+        return _total_surplus(state, outcome) / best
+
+
+class UnmetDemand:
+    """Units buyers wanted at a binding price ceiling that did not trade this round.
+
+    Buyers whose value is at least the ceiling want their units left at the ceiling; 0 when no
+    ceiling is in force.
+    """
+
+    description: ClassVar[str] = "units wanted at the price ceiling that did not trade"
+    aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "lower"
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Units."""
+        return float(outcome.unmet_demand)
+
+
+class UnmetSupply:
+    """Units sellers offered at a binding price floor that did not trade this round."""
+
+    description: ClassVar[str] = "units offered at the price floor that did not trade"
+    aggregate: ClassVar[str] = "sum"
+    better: ClassVar[str | None] = "lower"
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Units."""
+        return float(outcome.unmet_supply)
+
+
+def _weighted(price: np.ndarray, q: np.ndarray) -> float:
+    total = q.sum()
+    return float((price * q).sum() / total) if total > 0 else _NAN
+
+
+class BuyerPrice:
+    """Volume-weighted price buyers paid per unit this round, taxes included; NaN without trade."""
+
+    description: ClassVar[str] = "volume-weighted price buyers paid (tax included)"
+    aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = None
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Price units."""
+        return _weighted(outcome.buyer_pays, outcome.trades.quantity.astype(float))
+
+
+class SellerPrice:
+    """Volume-weighted price sellers received per unit this round, after tax; NaN without trade."""
+
+    description: ClassVar[str] = "volume-weighted price sellers received (after tax)"
+    aggregate: ClassVar[str] = "mean"
+    better: ClassVar[str | None] = None
+
+    def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
+        """Price units."""
+        return _weighted(outcome.seller_gets, outcome.trades.quantity.astype(float))

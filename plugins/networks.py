@@ -257,10 +257,18 @@ def from_graph(
     m = graph.number_of_edges()
     u = np.fromiter((index[a] for a, _ in graph.edges()), dtype=np.int64, count=m)
     v = np.fromiter((index[b] for _, b in graph.edges()), dtype=np.int64, count=m)
-    net = _from_edges(roles, u, v, labels=nodes)
+    net = _from_edges(roles, u, v, labels=nodes, attributes=_node_attributes(graph, nodes))
     n_b = int(np.count_nonzero(roles == BUYER))
     net.complete = net.n_edges > 0 and net.n_edges == n_b * (n - n_b)
     return net, roles
+
+
+def _node_attributes(graph, nodes: list) -> dict[str, np.ndarray]:
+    """Node attributes every node carries (other than the role), as columns in row order."""
+    data = graph.nodes
+    keys = set.intersection(*(set(data[node]) for node in nodes)) if nodes else set()
+    keys.discard("role")
+    return {k: np.array([data[node][k] for node in nodes]) for k in sorted(keys)}
 
 
 # -- builders ------------------------------------------------------------------------------------
@@ -524,9 +532,9 @@ class Regions:
     def build(self, role: np.ndarray, rng: np.random.Generator) -> TradingNetwork:
         """Place the traders and link the close pairs."""
         role = _check_role(role)
-        xy, _ = self.place(role, rng)
+        xy, region = self.place(role, rng)
         pairs = _close_pairs(xy, float(self.radius))  # shape: (n_pairs, 2)
-        return _from_edges(role, pairs[:, 0], pairs[:, 1])
+        return _from_edges(role, pairs[:, 0], pairs[:, 1], attributes={"region": region})
 
 
 #: Up to this many points, close pairs are found by brute force (no scipy.spatial import,

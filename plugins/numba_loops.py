@@ -1,7 +1,7 @@
-"""The numba-compiled loops behind :mod:`propensim.plugins._kernels` (imported only from there).
+"""The numba-compiled loops behind :mod:`propensim.plugins.acceleration` (imported only from there).
 
 Every function repeats, element by element and in the same order, the numpy operations it
-replaces, so the results are identical (tests/plugins/test_kernels.py checks them bit for bit).
+replaces, so the results are identical (tests/plugins/testacceleration.py checks them bit for bit).
 Compiled code is cached on disk (``cache=True``): the first use on a machine compiles, later
 processes load it.
 """
@@ -26,18 +26,21 @@ def ou_noise(mu, offset, off_step, decay, dec_step, gain, gain_step, sd, sd_step
 
 
 @numba.njit(cache=True, nogil=True)
-def apply_trades(b, s, q, p, stock, cash):
-    """``np.add.at(stock, b, q)``, ``np.subtract.at(stock, s, q)``, then with ``pay = q p``
-    ``np.subtract.at(cash, b, pay)`` and ``np.add.at(cash, s, pay)``, in that order."""
+def settle(b, s, q, pb, ps, stock, cash):
+    """Settle trades: the compiled twin of ``Population.settle``.
+
+    ``np.add.at(stock, b, q)``, ``np.subtract.at(stock, s, q)``, then
+    ``np.subtract.at(cash, b, q pb)`` and ``np.add.at(cash, s, q ps)``, in that order.
+    """
     m = b.shape[0]
     for i in range(m):
         stock[b[i]] += q[i]
     for i in range(m):
         stock[s[i]] -= q[i]
     for i in range(m):
-        cash[b[i]] -= q[i] * p[i]
+        cash[b[i]] -= q[i] * pb[i]
     for i in range(m):
-        cash[s[i]] += q[i] * p[i]
+        cash[s[i]] += q[i] * ps[i]
 
 
 @numba.njit(cache=True, nogil=True)

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from importlib import metadata
 from typing import Any
 
-KINDS = ("clearing", "drift", "curves", "networks", "metrics")
+KINDS = ("clearing", "drift", "curves", "networks", "metrics", "interventions")
 
 
 class UnknownPluginError(ValueError):
@@ -203,3 +203,14 @@ def describe(kind: str | None = None) -> list[tuple[str, str, str]]:
             if obj is not None:
                 rows.append((k, n, obj.description.strip().splitlines()[0]))
     return rows
+
+
+def _install_curve_resolver() -> None:
+    # The agents layer finds curve families by name through this hook, so a family registered
+    # as a plugin (by entry point or at run time) works there without agents importing plugins.
+    from propensim.agents.curves import set_family_resolver
+
+    set_family_resolver(lambda name: get_plugin("curves", name))
+
+
+_install_curve_resolver()

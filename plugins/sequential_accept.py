@@ -47,8 +47,10 @@ def _group_starts(groups: np.ndarray) -> np.ndarray:
 
 
 def _grouped(ids: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
-    """Reorder ``ids`` (given in processing order) so equal ``group[ids]`` form contiguous runs,
-    keeping processing order within each run. Skips the sort when the runs already are."""
+    """Reorder ``ids`` (given in processing order) so equal ``group[ids]`` form runs.
+
+    Keeps processing order within each run. Skips the sort when the runs already are.
+    """
     g = group[ids]
     if g.size < 2:
         return ids

@@ -22,8 +22,8 @@ from collections.abc import Iterable
 import numpy as np
 
 from propensim.agents.population import Population, build_population
-from propensim.plugins._invariants import CASH_RTOL, apply_trades, check_trades
 from propensim.plugins._matching import RowAgent, run_per_agent
+from propensim.plugins.trade_checks import CASH_RTOL, check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
 __all__ = ["check_clearing_rule", "check_drift_rule", "check_metric", "kit_markets"]
@@ -261,7 +261,7 @@ def _apply_and_check_conservation(pop: Population, trades: Trades, fail: _Fail, 
     stock0 = int(pop.stock.sum())
     cash_finite = bool(np.isfinite(pop.cash).all())
     cash0 = float(pop.cash.sum()) if cash_finite else np.nan
-    apply_trades(pop, trades)
+    settle_trades(pop, trades)
     if int(pop.stock.sum()) != stock0:
         raise fail("stock conserved", where, f"total stock {stock0} -> {int(pop.stock.sum())}")
     if (pop.stock < 0).any():
@@ -289,7 +289,7 @@ def _after_a_round(seed: int, n_buyers: int, n_sellers: int, trade: bool):
     s = n_buyers + b
     ok = net.has_edge(b, s) & (pop.value[b] >= pop.value[s]) if trade else np.zeros(n_pairs, bool)
     trades = Trades(b[ok], s[ok], 0.5 * (pop.value[b[ok]] + pop.value[s[ok]]), np.ones(ok.sum()))
-    apply_trades(pop, trades)
+    settle_trades(pop, trades)
     state = MarketState(
         pop, net, round=1, last_price=float(np.mean(trades.price)) if len(trades) else np.nan
     )

@@ -1,9 +1,10 @@
-"""The invariants every batch of trades must keep, and applying a batch to the population.
+"""The invariants every batch of trades must keep, checked before the batch is settled.
 
-The market calls :func:`check_trades` then :func:`apply_trades` every round; the conformance kit
-(:mod:`propensim.plugins.testing`) calls them too. Goods and money are conserved by construction:
-every unit leaves a seller's stock for a buyer's, every payment leaves a buyer's cash for a
-seller's.
+The market's settle stage calls :func:`check_trades`, then
+:meth:`~propensim.agents.population.Population.settle` (and :func:`settle_trades` is that pair, for
+the conformance kit and for tests). Goods and money are conserved by construction: every unit
+leaves a seller's stock for a buyer's, every payment leaves a buyer's cash for a seller's (or,
+under a tax, for the treasury).
 """
 
 from __future__ import annotations
@@ -11,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER, Population
-from propensim.plugins import _kernels
+from propensim.plugins import acceleration
 from propensim.plugins.types import MarketState, Trades
 
 #: Relative slack on budget checks: sums of float prices may differ from cash by rounding.
@@ -98,8 +99,11 @@ _ROLES_KEY = "invariants.role_runs"
 
 
 def _role_runs(state: MarketState) -> tuple[tuple[int, int] | None, tuple[int, int] | None]:
-    """``(lo, hi)`` when the buyers (then the sellers) are exactly the rows ``lo..hi-1``, else
-    None (cached per market: roles never change)."""
+    """The runs of buyer and seller rows: ``(lo, hi)`` each, or None.
+
+    ``(lo, hi)`` when the buyers (then the sellers) are exactly the rows ``lo..hi-1``, else None
+    (cached per market: roles never change).
+    """
     pop = state.population
     entry = state.cache.get(_ROLES_KEY)
     if entry is not None and entry[0] is pop and entry[1] is pop.role:
@@ -148,21 +152,18 @@ def _on_edge(net, b: np.ndarray, s: np.ndarray, edge: np.ndarray | None) -> np.n
     return found
 
 
-def apply_trades(population: Population, trades: Trades) -> None:
-    """Move goods seller -> buyer and money buyer -> seller, in place.
+def settle_trades(population: Population, trades: Trades, buyer_pays=None, seller_gets=None):
+    """Transfer a checked batch: goods seller -> buyer, money buyer -> seller, in place.
 
-    ``stock[seller] -= q``, ``stock[buyer] += q``, ``cash[buyer] -= q p``, ``cash[seller] += q p``
-    (a buyer with infinite cash keeps infinite cash). Total stock is unchanged; total finite cash
-    is unchanged when every buyer has a finite budget. Works on the traded rows only
-    (``np.add.at``), so its cost follows the number of trades, not of traders.
+    ``buyer_pays`` and ``seller_gets`` default to the trade prices (no tax). Large populations
+    take the compiled twin of :meth:`Population.settle` (same numbers, one pass).
     """
     if len(trades) == 0:
         return
-    if _kernels.apply_trades(trades, population.stock, population.cash):
+    pb = trades.price if buyer_pays is None else buyer_pays
+    ps = pb if seller_gets is None else seller_gets
+    if acceleration.settle(
+        trades.buyer, trades.seller, trades.quantity, pb, ps, population.stock, population.cash
+    ):
         return
-    q = trades.quantity
-    np.add.at(population.stock, trades.buyer, q)
-    np.subtract.at(population.stock, trades.seller, q)
-    pay = q * trades.price  # shape: (n_trades,)
-    np.subtract.at(population.cash, trades.buyer, pay)
-    np.add.at(population.cash, trades.seller, pay)
+    population.settle(trades.buyer, trades.seller, trades.quantity, pb, ps)

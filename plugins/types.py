@@ -108,6 +108,10 @@ class TradingNetwork:
         derived only when first read (a network of 1e7 edges saves 320 MB until then).
     labels : list, optional
         The source graph's node labels in row order (for reports).
+    attributes : dict of str to ndarray, optional
+        Per-trader attributes the network knows (shape (n,) each), e.g. ``region`` for the
+        ``regions`` builder or node attributes of a graph file: interventions and group
+        comparisons select traders by them.
     """
 
     def __init__(
@@ -118,10 +122,17 @@ class TradingNetwork:
         complete: bool = False,
         social: tuple[np.ndarray, np.ndarray] | None = None,
         labels: list | None = None,
+        attributes: dict | None = None,
     ) -> None:
         self.n = int(n)
         self.complete = bool(complete)
         self.labels = labels
+        self.attributes = {k: np.asarray(v) for k, v in (attributes or {}).items()}
+        for key, arr in self.attributes.items():
+            if arr.shape != (self.n,):
+                raise ValueError(
+                    f"network attribute {key!r} has shape {arr.shape}, expected ({n},)"
+                )
         self._social = social
         b = np.asarray(buyer, dtype=np.int64).reshape(-1)
         s = np.asarray(seller, dtype=np.int64).reshape(-1)
@@ -234,6 +245,39 @@ class TradingNetwork:
         _, labels = connected_components(adj, directed=False)
         return labels.astype(np.int64)
 
+    def keep_edges(self, keep: np.ndarray) -> TradingNetwork:
+        """A new network over the same rows with only the trading edges where ``keep`` is True.
+
+        Social edges touching a trader who lost every trading edge are dropped as well only when
+        they were derived from the trading edges; an explicit social graph keeps its edges
+        between traders who still have an edge in the kept set or had none to begin with.
+        Labels and attributes carry over.
+        """
+        keep = np.asarray(keep, dtype=bool)
+        if keep.shape != (self.n_edges,):
+            raise ValueError(f"keep has shape {keep.shape}, expected ({self.n_edges},)")
+        social = None
+        if self._social is not None:
+            u, v = self._social
+            gone = np.zeros(self.n, dtype=bool)
+            gone[self.buyer[~keep]] = True
+            gone[self.seller[~keep]] = True
+            still = np.zeros(self.n, dtype=bool)
+            still[self.buyer[keep]] = True
+            still[self.seller[keep]] = True
+            cut = gone & ~still  # traders cut off from trade altogether
+            ok = ~(cut[u] | cut[v])
+            social = (u[ok], v[ok])
+        return TradingNetwork(
+            self.n,
+            self.buyer[keep],
+            self.seller[keep],
+            complete=self.complete and bool(keep.all()),
+            social=social,
+            labels=self.labels,
+            attributes=self.attributes,
+        )
+
     def neighbours(self, i: int) -> np.ndarray:
         """Trading partners of row ``i`` (sellers of a buyer, buyers of a seller)."""
         sellers = self.seller[self.buyer_ptr[i] : self.buyer_ptr[i + 1]]
@@ -261,7 +305,19 @@ class MarketState:
         Mean price of the previous round's trades (NaN before any trade).
     cache : dict
         Per-market scratch space for derived quantities that do not change between rounds
-        (for example the largest achievable surplus). Key it by your plugin's name.
+        (for example the largest achievable surplus). Key it by your plugin's name. The market
+        empties it whenever it replaces the network or the population, so an entry can never
+        outlive the objects it was derived from.
+    elapsed : float
+        Time since the last drift step, in rounds: 1 in round mode, the time between steps in
+        event mode. Drift rules step their curves over ``dt * elapsed``.
+    price_floor, price_ceiling : float
+        Bounds on the price of any trade this round (``-inf`` and ``inf`` when no price control
+        is in force). Every clearing rule must honour them (MODEL.md section 9 gives the meaning
+        per rule); the market refuses a trade outside them.
+    benchmark_surplus : float
+        The largest achievable surplus per round of the market as it stood before any
+        intervention (NaN until measured): the fixed benchmark of ``fixed_efficiency``.
     """
 
     population: Population
@@ -271,6 +327,15 @@ class MarketState:
     equilibrium_price: float = float("nan")
     last_price: float = float("nan")
     cache: dict[str, Any] = field(default_factory=dict)
+    elapsed: float = 1.0
+    price_floor: float = float("-inf")
+    price_ceiling: float = float("inf")
+    benchmark_surplus: float = float("nan")
+
+    @property
+    def price_bounded(self) -> bool:
+        """True when a price floor or ceiling is in force this round."""
+        return self.price_floor > float("-inf") or self.price_ceiling < float("inf")
 
     def __post_init__(self) -> None:
         if self.remaining is None:
@@ -292,14 +357,30 @@ class RoundOutcome:
         Units each trader traded this round.
     mean_price : ndarray of float, shape (n,)
         Volume-weighted mean price each trader traded at this round (NaN where it did not trade).
+    buyer_pays, seller_gets : ndarray of float, shape (n_trades,)
+        Price per unit the buyer paid and the seller received: both the trade price unless a
+        per-unit tax or subsidy drives a wedge between them.
+    tax_revenue : float
+        Money the treasury took this round (taxes less subsidies; negative for a net subsidy).
+    unmet_demand, unmet_supply : int
+        Units wanted at a binding price ceiling (buyers whose value is at least the ceiling)
+        that did not trade, and units offered at a binding floor (sellers whose cost is at most
+        the floor) that did not trade; 0 with no price control.
     """
 
     trades: Trades
     traded: np.ndarray
     mean_price: np.ndarray
+    buyer_pays: np.ndarray | None = None
+    seller_gets: np.ndarray | None = None
+    tax_revenue: float = 0.0
+    unmet_demand: int = 0
+    unmet_supply: int = 0
 
     @classmethod
-    def from_trades(cls, trades: Trades, n: int) -> RoundOutcome:
+    def from_trades(
+        cls, trades: Trades, n: int, buyer_pays=None, seller_gets=None, tax_revenue: float = 0.0
+    ) -> RoundOutcome:
         """Tally a batch of trades per trader.
 
         ``traded`` and ``mean_price`` are tallied when first read (two passes over ``n``
@@ -308,6 +389,11 @@ class RoundOutcome:
         out = cls.__new__(cls)
         out.trades = trades
         out._n = int(n)
+        out.buyer_pays = trades.price if buyer_pays is None else buyer_pays
+        out.seller_gets = trades.price if seller_gets is None else seller_gets
+        out.tax_revenue = float(tax_revenue)
+        out.unmet_demand = 0
+        out.unmet_supply = 0
         return out
 
     def __getattr__(self, name: str):

@@ -38,7 +38,7 @@ def plain():
 
 
 def _engine_runs(clearing, seeds, pop=POP):
-    from propensim.markets.engine import build_market
+    from propensim.markets.build import build_market
 
     config = {
         "population": {"n_buyers": N_BUYERS, "n_sellers": N_SELLERS, **pop},

@@ -178,7 +178,7 @@ def test_population_curves_other_families():
 def test_trader_is_a_view_on_the_population_row():
     import mesa
 
-    from propensim.agents.population import Trader
+    from propensim.markets.model import Trader
 
     pop = build_population(2, 1, value=100.0, cost=90.0, sigma=3.0, rng=0)
     model = mesa.Model(rng=1)

@@ -20,7 +20,7 @@ from propensim.experiments.runner import (
     run_plans,
     show_progress,
 )
-from propensim.markets.engine import build_market
+from propensim.markets.build import build_market
 
 
 def test_run_one_ok_matches_the_engine_and_is_pure():

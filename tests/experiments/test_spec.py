@@ -14,7 +14,8 @@ from propensim.experiments.spec import (
     load_spec,
     parse_override,
 )
-from propensim.markets.engine import DEFAULT_METRICS, build_market
+from propensim.markets.build import build_market
+from propensim.markets.engine import DEFAULT_METRICS
 
 EXAMPLES = Path(experiments_pkg.__file__).parent / "examples"
 DEMO = EXAMPLES / "demo.toml"

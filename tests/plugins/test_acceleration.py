@@ -17,10 +17,10 @@ import numpy as np
 import pytest
 
 from propensim.agents.population import Population
-from propensim.markets.engine import build_market
-from propensim.plugins import _kernels
-from propensim.plugins._invariants import apply_trades
+from propensim.markets.build import build_market
+from propensim.plugins import acceleration
 from propensim.plugins.drift import _ou_apply
+from propensim.plugins.trade_checks import settle_trades
 from propensim.plugins.types import Trades
 
 pytest.importorskip("numba")
@@ -29,14 +29,14 @@ pytest.importorskip("numba")
 @pytest.fixture(autouse=True)
 def every_length(monkeypatch):
     """Let the kernels take columns of any length, so that small test markets use them."""
-    monkeypatch.setattr(_kernels, "MIN_LENGTH", 1)
+    monkeypatch.setattr(acceleration, "MIN_LENGTH", 1)
 
 
 @pytest.fixture
 def forced(monkeypatch):
     """Kernels on from the first round (``PROPENSIM_KERNELS=numba``)."""
     monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
-    assert _kernels.compiled(1) is not None
+    assert acceleration.compiled(1) is not None
 
 
 def _same_state(g1: np.random.Generator, g2: np.random.Generator) -> bool:
@@ -62,7 +62,7 @@ def test_ou_step_matches_numpy_bit_for_bit(forced, shape):
         pass
     g_fast, g_ref = np.random.default_rng(5), np.random.default_rng(5)
     out = np.empty(n)
-    assert _kernels.ou_apply(mu, offset, decay, gain, sd, g_fast, out)
+    assert acceleration.ou_apply(mu, offset, decay, gain, sd, g_fast, out)
     ref = mu * decay
     ref += np.multiply(offset, gain)
     xi = g_ref.standard_normal(n)
@@ -88,24 +88,23 @@ def test_ou_apply_uses_the_kernel_and_agrees_with_numpy(monkeypatch):
 def test_ou_kernel_refuses_columns_of_the_wrong_length(forced):
     # The compiled loop has no bounds checks: the wrapper must stop a short column.
     with pytest.raises(ValueError, match="as many rows as mu"):
-        _kernels.ou_apply(
+        acceleration.ou_apply(
             np.zeros(10), np.zeros(9), 0.5, 0.5, 1.0, np.random.default_rng(0), np.empty(10)
         )
 
 
-def test_apply_trades_matches_the_ufunc_at_sequence(forced):
+def test_settle_matches_the_ufunc_at_sequence(forced):
     rng = np.random.default_rng(3)
     n, m = 400, 3000
     buyer = rng.integers(0, 200, m)  # repeated rows: the order of the sums matters
     seller = rng.integers(200, 400, m)
     price = rng.normal(90, 20, m)
     qty = rng.integers(1, 4, m)
-    trades = Trades(buyer, seller, price, qty)
     stock = rng.integers(0, 50, n).astype(np.int64)
     cash = rng.normal(1000, 300, n)
     cash[rng.random(n) < 0.2] = np.inf
     s1, c1, s2, c2 = stock.copy(), cash.copy(), stock.copy(), cash.copy()
-    assert _kernels.apply_trades(trades, s1, c1)
+    assert acceleration.settle(buyer, seller, qty, price, price, s1, c1)
     np.add.at(s2, buyer, qty)
     np.subtract.at(s2, seller, qty)
     pay = qty * price
@@ -118,7 +117,8 @@ def test_apply_kernel_leaves_rows_out_of_range_to_numpy(forced):
     # The compiled loop has no bounds checks: a bad row must reach numpy, which raises.
     trades = Trades(np.array([0, 7]), np.array([3, 2]), np.array([1.0, 1.0]), np.array([1, 1]))
     stock, cash = np.zeros(5, dtype=np.int64), np.zeros(5)
-    assert not _kernels.apply_trades(trades, stock, cash)
+    t = trades
+    assert not acceleration.settle(t.buyer, t.seller, t.quantity, t.price, t.price, stock, cash)
     assert not stock.any() and not cash.any()
     with pytest.raises(IndexError):
         pop = Population(
@@ -132,7 +132,7 @@ def test_apply_kernel_leaves_rows_out_of_range_to_numpy(forced):
             stock=1,
             capacity=1,
         )
-        apply_trades(pop, trades)
+        settle_trades(pop, trades)
 
 
 def test_meeting_kernel_matches_the_numpy_chain(forced):
@@ -144,7 +144,7 @@ def test_meeting_kernel_matches_the_numpy_chain(forced):
     mu = rng.normal(100, 8, n)
     first_row, scale = 0, -0.5 / (2 * 25.0)
     g_fast, g_ref = np.random.default_rng(1), np.random.default_rng(1)
-    frac, partner, edge, arg = _kernels.meet_one_width(
+    frac, partner, edge, arg = acceleration.meet_one_width(
         g_fast, deg, start, seller, mu, first_row, scale
     )
     u = g_ref.random(k)
@@ -166,7 +166,7 @@ def test_price_kernel_matches_numpy(forced):
     mu = rng.normal(100, 10, 5000)
     b, s = rng.integers(0, 2500, 700), rng.integers(2500, 5000, 700)
     g_fast, g_ref = np.random.default_rng(6), np.random.default_rng(6)
-    fast = _kernels.prices_one_width(g_fast, mu, b, s, 3.5, 5000)
+    fast = acceleration.prices_one_width(g_fast, mu, b, s, 3.5, 5000)
     ref = mu[b] + mu[s]
     ref *= 0.5
     noise = g_ref.standard_normal(700)
@@ -187,7 +187,7 @@ def test_price_kernel_matches_numpy(forced):
     ],
 )
 def test_uniform_check_matches_min_equals_max(forced, values):
-    assert _kernels.is_uniform(values) == bool(values.min() == values.max())
+    assert acceleration.is_uniform(values) == bool(values.min() == values.max())
 
 
 @pytest.mark.parametrize("replenish", [True, False])
@@ -199,7 +199,7 @@ def test_round_start_matches_numpy(forced, replenish):
     capacity = rng.integers(0, 4, n)
     is_seller = rng.random(n) < 0.5
     s1, c1, s2, c2 = stock.copy(), cash.copy(), stock.copy(), cash.copy()
-    fast = _kernels.start_round(replenish, stock0, cash0, s1, c1, capacity, is_seller)
+    fast = acceleration.start_round(replenish, stock0, cash0, s1, c1, capacity, is_seller)
     if replenish:
         np.copyto(s2, stock0)
         np.copyto(c2, cash0)
@@ -271,22 +271,22 @@ def test_markets_are_identical_with_and_without_kernels(monkeypatch, case):
 
 
 def test_auto_mode_waits_for_enough_work_and_long_columns(monkeypatch):
-    monkeypatch.setattr(_kernels, "MIN_LENGTH", 4096)
+    monkeypatch.setattr(acceleration, "MIN_LENGTH", 4096)
     monkeypatch.setenv("PROPENSIM_KERNELS", "auto")
-    monkeypatch.setitem(_kernels._state, "work", 0)
-    assert _kernels.compiled(10**6) is None  # no work done yet
-    _kernels.count_work(_kernels.WORK_BEFORE_COMPILED)
-    assert _kernels.compiled(4095) is None  # too short a column
-    assert _kernels.compiled(4096) is not None
+    monkeypatch.setitem(acceleration._state, "work", 0)
+    assert acceleration.compiled(10**6) is None  # no work done yet
+    acceleration.count_work(acceleration.WORK_BEFORE_COMPILED)
+    assert acceleration.compiled(4095) is None  # too short a column
+    assert acceleration.compiled(4096) is not None
     monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
-    monkeypatch.setitem(_kernels._state, "work", 0)
-    assert _kernels.compiled(4096) is not None and _kernels.compiled(4095) is None
+    monkeypatch.setitem(acceleration._state, "work", 0)
+    assert acceleration.compiled(4096) is not None and acceleration.compiled(4095) is None
 
 
 def test_small_runs_never_import_numba():
     code = (
         "import json, sys\n"
-        "from propensim.markets.engine import build_market\n"
+        "from propensim.markets.build import build_market\n"
         "cfg = {'population': {'n_buyers': 300, 'n_sellers': 300}, 'drift': {'name': 'anchor',"
         " 'noise': 0.5}}\n"
         "build_market(cfg, seed=1, mesa=False).run(50)\n"
@@ -302,4 +302,4 @@ def test_small_runs_never_import_numba():
 def test_a_bad_kernels_setting_is_named(monkeypatch):
     monkeypatch.setenv("PROPENSIM_KERNELS", "fast")
     with pytest.raises(ValueError, match="PROPENSIM_KERNELS must be numpy, numba or auto"):
-        _kernels.compiled(10)
+        acceleration.compiled(10)

@@ -7,8 +7,8 @@ import pytest
 
 from propensim.agents.population import build_population
 from propensim.plugins._auctions import reservation_prices
-from propensim.plugins._invariants import check_trades
 from propensim.plugins.clearing import BilateralBargaining, CallAuction, DoubleAuction
+from propensim.plugins.trade_checks import check_trades
 from propensim.plugins.types import MarketState, TradingNetwork
 
 

@@ -8,7 +8,6 @@ from scipy import stats
 
 from propensim.agents.population import build_population
 from propensim.plugins import registry
-from propensim.plugins._invariants import check_trades
 from propensim.plugins.clearing import (
     BilateralBargaining,
     CallAuction,
@@ -18,6 +17,7 @@ from propensim.plugins.clearing import (
     RowAgent,
     run_per_agent,
 )
+from propensim.plugins.trade_checks import check_trades
 from propensim.plugins.types import MarketState, Trades, TradingNetwork
 
 # Bromiley 2003, Tina Memo 2003-003: N(3, 0.7^2) x N(4.5, 1^2) has mean 3.493289,
@@ -202,7 +202,7 @@ def test_run_per_agent_checks_units_and_leaves_state_alone():
 def test_run_per_agent_accepts_mesa_traders():
     import mesa
 
-    from propensim.agents.population import Trader
+    from propensim.markets.model import Trader
 
     state = _equivalence_market()
     model = mesa.Model(rng=0)

@@ -310,15 +310,29 @@ def test_bad_parameters_name_field_and_range(name, params, field, allowed):
     assert field in msg and allowed in msg and "\n" not in msg
 
 
-def test_combine_refuses_rules_without_terms():
-    class Opaque:
-        description = "no terms"
+def test_combine_takes_apply_only_rules_after_the_forces_and_refuses_neither():
+    from propensim.plugins.types import MarketState, RoundOutcome, Trades
+
+    class Shift:  # a rule with only apply(): moves every curve up by 1
+        description = "shift every preferred price up by one"
 
         def apply(self, state, outcome, rng):
-            return state.population.mu, state.population.sigma
+            return state.population.mu + 1.0, state.population.sigma
 
-    with pytest.raises(ValueError, match="terms"):
-        combine([Opaque()])
+    class Neither:
+        description = "neither terms nor apply"
+
+    pop = build_population(3, 3, value=100.0, cost=80.0, rng=0)
+    state = MarketState(population=pop, network=None)
+    outcome = RoundOutcome.from_trades(Trades.empty(), len(pop))
+    anchor = AnchorDrift(strength=1.0)
+    forces_only = combine([anchor]).apply(state, outcome, np.random.default_rng(1))
+    both = combine([anchor, Shift()]).apply(state, outcome, np.random.default_rng(1))
+    # forces first (same draws), then the apply-only rule on their result
+    np.testing.assert_array_equal(both[0], forces_only[0] + 1.0)
+    assert np.array_equal(pop.mu, build_population(3, 3, value=100.0, cost=80.0, rng=0).mu)
+    with pytest.raises(ValueError, match="terms.*apply"):
+        combine([Neither()])
     with pytest.raises(ValueError, match="noise"):
         combine([AnchorDrift()], noise=-1)
 

@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 
 from propensim.agents.population import build_population
-from propensim.plugins._greedy import greedy_accept, greedy_accept_loop
-from propensim.plugins._invariants import check_trades
 from propensim.plugins._matching import propensity_round
 from propensim.plugins.drift import AnchorDrift, DriftSum, _ou_coefficients, ou_step
+from propensim.plugins.sequential_accept import greedy_accept, greedy_accept_loop
+from propensim.plugins.trade_checks import check_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
 

@@ -8,8 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from propensim.agents.population import build_population
-from propensim.plugins._greedy import greedy_accept, greedy_accept_loop
-from propensim.plugins._invariants import apply_trades, check_trades
+from propensim.plugins.sequential_accept import greedy_accept, greedy_accept_loop
+from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import MarketState, Trades, TradingNetwork
 
 
@@ -52,11 +52,11 @@ def test_each_violation_is_one_line_value_error(market, trades, words):
     assert "\n" not in str(err.value)
 
 
-def test_apply_trades_moves_goods_and_money_and_conserves(market):
+def test_settle_trades_moves_goods_and_money_and_conserves(market):
     pop = market.population
     pop.cash[:] = [100.0, np.inf, 50.0, 0.0, 0.0, 0.0]
     stock0, finite0 = pop.stock.sum(), pop.cash[[0, 2, 3, 4, 5]].sum()
-    apply_trades(pop, _t([0, 2, 1], [3, 3, 4], [80.0, 10.0, 5.0], [1, 2, 1]))
+    settle_trades(pop, _t([0, 2, 1], [3, 3, 4], [80.0, 10.0, 5.0], [1, 2, 1]))
     assert pop.stock.tolist() == [1, 1, 2, -2, 0, 0]  # apply does not check; check_trades does
     assert pop.cash.tolist() == [20.0, np.inf, 30.0, 100.0, 5.0, 0.0]
     assert pop.stock.sum() == stock0
