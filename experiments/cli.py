@@ -30,6 +30,8 @@ _INPUT_ERRORS = {
     "propensim.plugins.registry": "UnknownPluginError",
     "propensim.experiments.store": "StoreError",
     "propensim.experiments.runner": "BackendError",
+    "propensim.experiments.report": "ReportError",
+    "propensim.experiments.sensitivity": "SensitivityError",
 }
 
 
@@ -105,6 +107,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("spec", help="spec file (TOML)")
     add_set(q)
     q.add_argument("--workers", type=_positive_int, help="workers to estimate for (default: CPUs)")
+    q.add_argument("--points", action="store_true", help="list the design points it will run")
 
     q = sub.add_parser("compare", help="paired comparison of the arms in a results folder")
     q.add_argument("folder", help="results folder")
@@ -124,6 +127,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--workers", type=_positive_int, help="local worker processes (default: CPUs)")
     q.add_argument("--quiet", action="store_true", help="no progress bar")
 
+    _add_report_parsers(sub, add_set)
+
     q = sub.add_parser("pair", help="one buyer meets one seller: the worked example as a table")
     for name, default in (
         ("buyer-mu", 95.0),
@@ -135,6 +140,40 @@ def build_parser() -> argparse.ArgumentParser:
         q.add_argument(f"--{name}", type=float, default=default, help=f"(default {default})")
     q.add_argument("--levels", type=int, default=3, help="oscillator levels to show (default 3)")
     return p
+
+
+def _add_report_parsers(sub, add_set) -> None:
+    """``report``, ``sensitivity`` and ``describe`` (see propensim.experiments.report)."""
+    q = sub.add_parser("report", help="write one self-contained HTML report of a results folder")
+    q.add_argument("folder", help="results folder")
+    q.add_argument("--out", help="HTML file (default FOLDER/report.html); CSV tables beside it")
+    q.add_argument("--figures", metavar="DIR", help="also write every figure as PNG and SVG")
+
+    q = sub.add_parser(
+        "sensitivity", help="Sobol' indices (Saltelli sampling) or Morris screening of a spec"
+    )
+    q.add_argument("spec", help="spec file (TOML) whose design.parameters are ranges")
+    q.add_argument("--method", choices=("sobol", "morris"), default="sobol")
+    q.add_argument(
+        "--samples",
+        type=_positive_int,
+        default=256,
+        help="base samples N (Sobol': N x (params + 2) points; a power of 2) or Morris "
+        "trajectories (default 256)",
+    )
+    q.add_argument("--levels", type=_positive_int, default=4, help="Morris grid levels (4)")
+    q.add_argument("--metric", action="append", default=[], help="metric (repeatable)")
+    q.add_argument("--out", help="results folder (default ./results/<name>-sensitivity)")
+    add_set(q)
+    q.add_argument("--workers", type=_positive_int, help="local worker processes (default: CPUs)")
+    q.add_argument("--scheduler", metavar="ADDR", help="run on a Dask scheduler (tcp://host:port)")
+    q.add_argument("--no-report", action="store_true", help="do not write report.html")
+    q.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    q = sub.add_parser("describe", help="describe a spec's model under the ODD protocol (Markdown)")
+    q.add_argument("spec", help="spec file (TOML)")
+    add_set(q)
+    q.add_argument("--out", help="Markdown file to write (default: print it)")
 
 
 # -- commands ------------------------------------------------------------------------------
@@ -267,6 +306,18 @@ def cmd_check(args) -> int:
         + (f" ({distinct} distinct)" if distinct != spec.n_runs else "")
         + (f", arms: {', '.join(arms)}" if len(arms) > 1 else "")
     )
+    if args.points:
+        import pandas as pd
+
+        from propensim.experiments.tables import design_table
+
+        with pd.option_context("display.max_rows", None, "display.width", 200):
+            print(design_table(spec).to_string(index=False))
+    if spec.design.get("kind") == "sobol":
+        print(
+            "note: design kind 'sobol' spreads points evenly (a low-discrepancy sequence); it is "
+            "not the sampling Sobol' sensitivity indices need: use propensim sensitivity"
+        )
     if not plans:
         return 0
     with warnings.catch_warnings(record=True) as caught:
@@ -360,6 +411,9 @@ def cmd_demo(args) -> int:
         table = point_means(load(store.path).runs, metrics, params)
         print("\nMeans per design point and arm (paired differences above):")
         print(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+        report = _write_report(store.path)
+        if report is not None:
+            print(f"report: {report}")
     print(CAUTION)
     return code
 
@@ -380,6 +434,86 @@ def cmd_pair(args) -> int:
     return 0
 
 
+def _write_report(folder, out=None, figures=None):
+    """Write the HTML report; None (with a warning) when the report extra is not installed."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        print(
+            "propensim: warning: no report written: install the extra, pip install "
+            "'propensim[report]'",
+            file=sys.stderr,
+        )
+        return None
+    from propensim.experiments.report import write_report
+
+    return write_report(folder, out, figures_dir=figures).path
+
+
+def cmd_report(args) -> int:
+    """``propensim report``."""
+    from propensim.experiments.report import write_report
+
+    result = write_report(args.folder, args.out, figures_dir=args.figures)
+    for line in result.missing:
+        print(f"missing: {line}")
+    print(f"figures: {', '.join(result.figures) or 'none'}")
+    for path in result.tables:
+        print(f"written: {path}")
+    print(f"report: {result.path} ({result.bytes / 1024:.0f} KiB)")
+    return 0
+
+
+def cmd_sensitivity(args) -> int:
+    """``propensim sensitivity``."""
+    import warnings
+
+    from propensim.experiments.sensitivity import run_sensitivity
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        folder, table = run_sensitivity(
+            args.spec,
+            args.out,
+            method=args.method,
+            samples=args.samples,
+            levels=args.levels,
+            metrics=args.metric or None,
+            overrides=args.overrides,
+            workers=args.workers,
+            scheduler=args.scheduler,
+            progress=False if args.quiet else None,
+        )
+    _print_warnings(caught)
+    import pandas as pd
+
+    with pd.option_context("display.max_rows", None, "display.width", 200):
+        print(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    for w in dict.fromkeys(w for w in table.get("warning", []) if isinstance(w, str) and w):
+        print(f"propensim: warning: {w}", file=sys.stderr)
+    print(f"written: {folder / 'sensitivity.csv'}")
+    if not args.no_report:
+        report = _write_report(folder)
+        if report is not None:
+            print(f"report: {report}")
+    return 0
+
+
+def cmd_describe(args) -> int:
+    """``propensim describe``."""
+    from propensim.experiments.describe import describe_spec
+    from propensim.experiments.spec import load_spec
+    from propensim.experiments.store import atomic_write_bytes
+
+    text = describe_spec(load_spec(args.spec, args.overrides))
+    if args.out:
+        atomic_write_bytes(Path(args.out), text.encode())
+        print(f"written: {args.out}")
+    else:
+        print(text, end="")
+    return 0
+
+
 COMMANDS = {
     "run": cmd_run,
     "check": cmd_check,
@@ -388,6 +522,9 @@ COMMANDS = {
     "plugins": cmd_plugins,
     "demo": cmd_demo,
     "pair": cmd_pair,
+    "report": cmd_report,
+    "sensitivity": cmd_sensitivity,
+    "describe": cmd_describe,
 }
 
 
