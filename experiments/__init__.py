@@ -33,6 +33,12 @@ _NAMES = {
     "compare_arms": "compare",
     "compare_folder": "compare",
     "bootstrap_mean_ci": "compare",
+    "point_table": "tables",
+    "paired_point_table": "tables",
+    "write_report": "report",
+    "render_report": "report",
+    "run_sensitivity": "sensitivity",
+    "describe_spec": "describe",
 }
 
 __all__ = sorted(_NAMES)

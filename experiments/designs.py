@@ -15,7 +15,10 @@ values and returns a list of points, one dict per point. Five kinds:
     ``samples`` equal strata and every stratum holds exactly one point in every dimension.
 ``sobol``
     Scrambled Sobol' sequence (:class:`scipy.stats.qmc.Sobol`); its balance properties hold for
-    a power-of-two number of points, so other sizes are accepted with a warning.
+    a power-of-two number of points, so other sizes are accepted with a warning. It is a way of
+    spreading sweep points evenly over the ranges (a low-discrepancy sequence), not the sampling
+    that Sobol' sensitivity indices need: for those use ``propensim sensitivity``
+    (:mod:`propensim.experiments.sensitivity`, Saltelli sampling).
 
 Ranges are mappings ``{low, high, integer=False, log=False}``. Unit-cube samples are mapped to the
 ranges with :func:`scipy.stats.qmc.scale`. ``log=True`` samples uniformly in ``log(value)``
