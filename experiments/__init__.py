@@ -39,6 +39,12 @@ _NAMES = {
     "render_report": "report",
     "run_sensitivity": "sensitivity",
     "describe_spec": "describe",
+    "calibrate": "calibrate_api",
+    "fit_returns": "calibrate_api",
+    "fit_acceptance": "calibrate_api",
+    "recover_curves": "calibrate_api",
+    "tune_market": "calibrate_api",
+    "CalibrationError": "calibrate_api",
 }
 
 __all__ = sorted(_NAMES)

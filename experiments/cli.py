@@ -1,6 +1,7 @@
 """The ``propensim`` command line.
 
-Commands: ``run``, ``check``, ``compare``, ``query``, ``plugins``, ``demo``, ``pair``.
+Commands: ``run``, ``check``, ``compare``, ``query``, ``plugins``, ``demo``, ``pair``,
+``calibrate``, ``acceptance``, ``tune``.
 Exit codes: 0 success; 1 some runs failed or the sweep stopped; 2 bad input (invalid spec, unknown
 plugin, unusable results folder, bad arguments), reported as one line ``propensim: error: ...``
 on stderr. Anything unexpected still shows its traceback.
@@ -30,6 +31,7 @@ _INPUT_ERRORS = {
     "propensim.plugins.registry": "UnknownPluginError",
     "propensim.experiments.store": "StoreError",
     "propensim.experiments.runner": "BackendError",
+    "propensim.experiments.calibrate_base": "CalibrationError",
     "propensim.experiments.report": "ReportError",
     "propensim.experiments.sensitivity": "SensitivityError",
 }
@@ -139,7 +141,38 @@ def build_parser() -> argparse.ArgumentParser:
     ):
         q.add_argument(f"--{name}", type=float, default=default, help=f"(default {default})")
     q.add_argument("--levels", type=int, default=3, help="oscillator levels to show (default 3)")
+    _add_calibration_parsers(sub)
     return p
+
+
+def _add_calibration_parsers(sub) -> None:
+    """``calibrate``, ``acceptance`` and ``tune`` (see propensim.experiments.calibrate)."""
+    q = sub.add_parser(
+        "calibrate", help="fit oscillator-level mixtures, normal and Student-t to a price series"
+    )
+    q.add_argument("data", help="CSV or Parquet file")
+    q.add_argument("--column", required=True, help="column of prices (or returns, --returns)")
+    q.add_argument("--returns", action="store_true", help="the column holds log returns")
+    q.add_argument("--max-level", type=int, default=2, help="highest level K, 1..8 (default 2)")
+    q.add_argument("--starts", type=int, default=8, help="starts per model (default 8)")
+    q.add_argument("--seed", type=int, default=20261202, help="seed of the starting points")
+    q.add_argument("--max-iter", type=int, default=2000, help="iterations per start (default 2000)")
+    q.add_argument("--out", help="results folder (default ./results/calibrate-<file>-<column>)")
+
+    q = sub.add_parser("acceptance", help="fit propensity curves to accept/reject observations")
+    q.add_argument("data", help="CSV or Parquet file")
+    q.add_argument("--price", default="price", help="column of offered prices (default price)")
+    q.add_argument("--accepted", default="accepted", help="column of 0/1 outcomes")
+    q.add_argument("--family", choices=("logistic", "normal"), default="logistic")
+    q.add_argument("--side", choices=("buyer", "seller"), default="buyer")
+    q.add_argument("--activity", default="1", help="curve height in (0, 1], or 'fit'")
+    q.add_argument(
+        "--meetings",
+        action="store_true",
+        help="DATA is a meetings table (round, buyer, seller, price, traded): one curve per unit",
+    )
+    q.add_argument("--by", default="trader", help="with --meetings: trader, or a column suffix")
+    q.add_argument("--out", help="results folder (default ./results/acceptance-<file>)")
 
 
 def _add_report_parsers(sub, add_set) -> None:
@@ -514,7 +547,93 @@ def cmd_describe(args) -> int:
     return 0
 
 
+def _calibration_out(given, stem: str) -> Path:
+    import re
+
+    return Path(given) if given else Path("results") / re.sub(r"[^A-Za-z0-9_-]+", "_", stem)
+
+
+def cmd_calibrate(args) -> int:
+    """``propensim calibrate``."""
+    from propensim.experiments.calibrate_api import calibrate
+
+    out = _calibration_out(args.out, f"calibrate-{Path(args.data).stem}-{args.column}")
+    fit = calibrate(
+        args.data,
+        args.column,
+        returns=args.returns,
+        max_level=args.max_level,
+        starts=args.starts,
+        seed=args.seed,
+        max_iter=args.max_iter,
+        out=out,
+    )
+    print(fit.format())
+    bad = [f for f in fit.fits if not f.converged]
+    if bad:
+        for f in bad:
+            print(f"propensim: error: {f.model} did not converge ({f.message})", file=sys.stderr)
+        return 1
+    return 0
+
+
+def cmd_acceptance(args) -> int:
+    """``propensim acceptance``."""
+    from propensim.experiments.calibrate_api import (
+        fit_acceptance,
+        recover_curves,
+        save_acceptance,
+    )
+    from propensim.experiments.calibrate_base import caution, read_frame
+
+    frame, source = read_frame(args.data)
+    out = _calibration_out(args.out, f"acceptance-{Path(args.data).stem}")
+    assumptions = (
+        f"{args.family} curves, every answer an independent Bernoulli draw at the offered price"
+    )
+    if args.meetings:
+        result = recover_curves(frame, family=args.family, by=args.by)
+        with __import__("pandas").option_context("display.width", 200):
+            print(result.table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+        print(f"log-likelihood {result.loglik:.4f}; {result.message}")
+        assumptions += "; a meeting trades only if both sides accept, independently"
+    else:
+        for col in (args.price, args.accepted):
+            if col not in frame.columns:
+                opt = "--price" if col == args.price else "--accepted"
+                raise InputError(f"{opt} {col!r}: no such column in {args.data}")
+        activity = args.activity if args.activity == "fit" else _float_arg(args.activity)
+        result = fit_acceptance(
+            frame[args.price].to_numpy(),
+            frame[args.accepted].to_numpy(),
+            family=args.family,
+            side=args.side,
+            activity=activity,
+        )
+        print(f"{result.family} curve of a {result.side}, {result.n} offers")
+        print(result.table().to_string(index=False, float_format=lambda v: f"{v:.6g}"))
+        print(f"log-likelihood {result.loglik:.4f}; {result.message}")
+    path = save_acceptance(result, out, source)
+    print(f"results: {path}")
+    print(caution(assumptions))
+    if not result.converged:
+        print(f"propensim: error: the fit did not converge ({result.message})", file=sys.stderr)
+        return 1
+    return 0
+
+
+def _float_arg(text: str) -> float:
+    try:
+        return float(text)
+    except ValueError:
+        raise InputError(
+            f"--activity: expected a number in (0, 1] or 'fit', got {text!r}"
+        ) from None
+
+
 COMMANDS = {
+    "calibrate": cmd_calibrate,
+    "acceptance": cmd_acceptance,
     "run": cmd_run,
     "check": cmd_check,
     "compare": cmd_compare,
