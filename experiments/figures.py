@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import contextlib
 import io
+import warnings
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -90,7 +91,7 @@ METRIC_LABELS = {
     "vwap": "volume-weighted price (price units)",
     "price_sd": "price dispersion, sd (price units)",
     "preference_gap": "preference gap (price units)",
-    "efficiency": "allocative efficiency (share of max. surplus)",
+    "efficiency": "efficiency (share of max. surplus)",
     "buyer_surplus": "buyer surplus (price units x units)",
     "seller_surplus": "seller surplus (price units x units)",
     "surplus_gini": "Gini of trader surplus (0 to 1)",
@@ -115,6 +116,18 @@ def _style():
 
     with matplotlib.rc_context(STYLE):
         yield
+
+
+def _styled(func):
+    """Draw the whole figure inside the house style (colours resolve when artists are made)."""
+    import functools
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        with _style():
+            return func(*args, **kwargs)
+
+    return wrapper
 
 
 def _figure(width: float, height: float):
@@ -174,7 +187,8 @@ def _t_band(values: np.ndarray, confidence: float = 0.95):
     """Mean and Student-t interval of the mean over axis 0 (NaN-aware)."""
     from scipy import stats
 
-    with np.errstate(invalid="ignore", divide="ignore"), contextlib.suppress(Warning):
+    with np.errstate(invalid="ignore", divide="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # a round with one replicate: no sd
         n = np.sum(np.isfinite(values), axis=0)  # shape: (rounds,)
         mean = np.nanmean(values, axis=0) if values.size else np.array([])
         sd = np.nanstd(values, axis=0, ddof=1) if values.shape[0] > 1 else np.zeros_like(mean)
@@ -184,6 +198,7 @@ def _t_band(values: np.ndarray, confidence: float = 0.95):
 
 
 # -- one pair -----------------------------------------------------------------------------------
+@_styled
 def pair_figure(
     buyer_mu: float,
     buyer_sigma: float,
@@ -286,6 +301,7 @@ def pair_figure(
 
 
 # -- paths --------------------------------------------------------------------------------------
+@_styled
 def paths_figure(rounds, runs, metrics: Sequence[str] = ("vwap", "volume"), *, max_points=4):
     """Metrics round by round: the mean over replicates and a 95% interval of that mean, per arm.
 
@@ -334,6 +350,7 @@ def paths_figure(rounds, runs, metrics: Sequence[str] = ("vwap", "volume"), *, m
 
 
 # -- sweeps -------------------------------------------------------------------------------------
+@_styled
 def sweep_figure(points, parameter: str, metrics: Sequence[str], *, log_x: bool = False):
     """Metrics against one design parameter, per arm, with the table's intervals.
 
@@ -389,6 +406,7 @@ def sweep_figure(points, parameter: str, metrics: Sequence[str], *, log_x: bool 
     return fig
 
 
+@_styled
 def heatmap_figure(points, x: str, y: str, metric: str, arm: str | None = None):
     """Mean of a metric over two grid parameters (one arm), each cell labelled with its value."""
     sub = points[points["metric"] == metric]
@@ -417,6 +435,7 @@ def heatmap_figure(points, x: str, y: str, metric: str, arm: str | None = None):
 
 
 # -- comparisons --------------------------------------------------------------------------------
+@_styled
 def forest_figure(comparison, *, by_point: bool = False):
     """Paired differences ``arm - baseline`` with intervals: one panel per metric.
 
@@ -465,6 +484,7 @@ def forest_figure(comparison, *, by_point: bool = False):
 
 
 # -- the network --------------------------------------------------------------------------------
+@_styled
 def network_figure(buyer, seller, role, surplus=None, *, max_nodes: int = 300, seed: int = 0):
     """Traders as nodes, coloured by role and sized by surplus; edges are buyer-seller links.
 
@@ -533,6 +553,7 @@ def network_figure(buyer, seller, role, surplus=None, *, max_nodes: int = 300, s
 
 
 # -- tables from other parts of propensim ---------------------------------------------------------
+@_styled
 def gains_losses_figure(groups):
     """Who gains and who loses: change of surplus per group of traders, with intervals.
 
@@ -564,6 +585,7 @@ def gains_losses_figure(groups):
     return fig
 
 
+@_styled
 def event_sales_figure(events, *, time: str = "time", sales: str = "sales", stock: str = "stock"):
     """Sales per time window and stock over time (event mode), mean over runs when several.
 
@@ -592,6 +614,7 @@ def event_sales_figure(events, *, time: str = "time", sales: str = "sales", stoc
     return fig
 
 
+@_styled
 def calibration_figure(fits, *, x: str = "x", observed: str = "observed"):
     """An observed distribution against fitted model densities.
 
@@ -616,6 +639,7 @@ def calibration_figure(fits, *, x: str = "x", observed: str = "observed"):
     return fig
 
 
+@_styled
 def sensitivity_figure(indices):
     """Sensitivity indices per parameter, one panel per metric (and arm).
 

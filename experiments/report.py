@@ -29,6 +29,7 @@ import base64
 import html
 import json
 import math
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -223,7 +224,11 @@ def _rerun_first(page: _Page) -> dict | None:
     config["metrics"] = list(page.metrics)
     config["market"] = {**config.get("market", {}), "keep_ledger": True, "traders_every": 0}
     seed = np.random.SeedSequence(int(first["seed_entropy"]), spawn_key=tuple(first["seed_key"]))
-    market = build_market(config, seed, mesa=False)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        market = build_market(config, seed, mesa=False)
+    for w in dict.fromkeys(" ".join(str(w.message).split()) for w in caught):
+        page.notes.append(f"Re-running the first run warned: {w}")
     population = market.population
     start = {
         k: np.array(getattr(population, k), copy=True)

@@ -86,7 +86,7 @@ def problem_from_spec(spec) -> dict[str, Any]:
             f"{where}design.parameters: sensitivity analysis needs ranges "
             "{low = ..., high = ...} for every parameter (design kind random, lhs or sobol); "
             f"this design (kind = {spec.design.get('kind')!r}) has "
-            + ("none" if not ranges else "lists of levels")
+            + ("no parameters" if not params else "lists of levels or fixed points")
         )
     names = list(ranges)
     return {
@@ -327,14 +327,14 @@ def run_sensitivity(
     from propensim.experiments.store import atomic_write_bytes, load
 
     base = _as_spec(spec_or_path, overrides)
-    run_spec, settings = sensitivity_spec(base, method, samples, levels)
-    metrics = list(metrics) if metrics else list(run_spec.metrics)
+    metrics = list(metrics) if metrics else list(base.metrics)
     for m in metrics:
-        if m not in run_spec.metrics:
+        if m not in base.metrics:
             raise SensitivityError(
-                f"metric {m!r} is not collected; allowed: {', '.join(run_spec.metrics)} "
+                f"metric {m!r} is not collected; allowed: {', '.join(base.metrics)} "
                 "(collect.metrics)"
             )
+    run_spec, settings = sensitivity_spec(base, method, samples, levels)
     out = Path(out) if out is not None else default_out(run_spec.name)
     store = run_experiment(
         run_spec,
@@ -366,5 +366,5 @@ def load_indices(folder):
     table = pd.read_csv(csv)
     for col in ("arm", "warning"):
         if col in table.columns:
-            table[col] = table[col].fillna("").astype(str)
+            table[col] = table[col].astype(object).where(table[col].notna(), "").astype(str)
     return table, settings
