@@ -10,7 +10,7 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, model_validator
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
 
 #: Config sections holding a plugin, with the registry kind of each.
 PLUGIN_KINDS = {"network": "networks", "clearing": "clearing", "drift": "drift"}
@@ -61,7 +61,7 @@ class ExperimentModel(_Model):
     name: str = Field(pattern=_NAME_PATTERN)
     description: str = ""
     seed: int = Field(ge=0)
-    rounds: int = Field(ge=1)
+    rounds: int | None = Field(default=None, ge=1)  # required in round mode (checked in spec.py)
     replicates: int = Field(default=1, ge=1)
 
 
@@ -114,6 +114,62 @@ class MarketModel(_Model):
 
     replenish: bool = True
     keep_ledger: bool | None = None
+    mode: Literal["rounds", "events", "shop"] = "rounds"
+
+
+def _finite_rate(v: Any) -> Any:
+    """``events.rate``: a number >= 0 and finite, or a distribution spec (one per trader)."""
+    if _is_number(v) and not (0 <= v < float("inf")):
+        raise ValueError(f"must be >= 0 and finite, got {v!r}")
+    return _check_distribution(v)
+
+
+class EventsModel(_Model):
+    """``[events]``: the continuous-time engine (``market.mode = "events"``)."""
+
+    rate: Annotated[Any, AfterValidator(_finite_rate)] = 1.0
+    method: Literal["tree", "direct"] = "tree"
+    horizon: float = Field(gt=0, allow_inf_nan=False)
+    window: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    drift_every: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    max_events: int = Field(default=10_000_000, ge=1)
+
+    @field_validator("window")
+    @classmethod
+    def _window_fits(cls, v, info):
+        horizon = info.data.get("horizon")
+        if v is not None and horizon is not None and v > horizon:
+            raise ValueError(f"must be <= horizon ({horizon:g}), got {v!r}")
+        return v
+
+
+class ShopModel(_Model):
+    """``[shop]``: the (s, S) shop of ``market.mode = "shop"`` (days; see markets/supply_chain)."""
+
+    price: float = Field(default=5.0, allow_inf_nan=False)
+    arrival_rate: float = Field(default=20.0, ge=0, allow_inf_nan=False)
+    order_up_to: int = Field(default=100, ge=1)
+    reorder_point: int = Field(default=20, ge=0)
+    lead_time: float = Field(default=3.0, ge=0, allow_inf_nan=False)
+    initial_stock: int | None = Field(default=None, ge=0)
+    days: float = Field(default=364.0, gt=0, allow_inf_nan=False)
+    week: float = Field(default=7.0, gt=0, allow_inf_nan=False)
+
+    @field_validator("reorder_point")
+    @classmethod
+    def _s_below_big_s(cls, v, info):
+        big = info.data.get("order_up_to")
+        if big is not None and v > big:
+            raise ValueError(f"must be <= order_up_to ({big}), got {v!r}")
+        return v
+
+    @field_validator("week")
+    @classmethod
+    def _week_fits(cls, v, info):
+        days = info.data.get("days")
+        if days is not None and v > days:
+            raise ValueError(f"must be <= days ({days:g}), got {v!r}")
+        return v
 
 
 class CollectModel(_Model):
@@ -163,6 +219,8 @@ class SpecModel(_Model):
     market: MarketModel = Field(default_factory=MarketModel)
     collect: CollectModel = Field(default_factory=CollectModel)
     design: DesignModel = Field(default_factory=DesignModel)
+    events: EventsModel | None = None
+    shop: ShopModel | None = None
     arms: list[ArmModel] = Field(default_factory=list)
     compare: CompareModel | None = None
 

@@ -57,9 +57,11 @@ from propensim.experiments import designs
 from propensim.experiments._schema import (
     PLUGIN_KINDS,
     DriftModel,
+    EventsModel,
     MarketModel,
     PluginModel,
     PopulationModel,
+    ShopModel,
     SpecModel,
     _data_path,
     _pydantic_problem,
@@ -71,7 +73,9 @@ from propensim.experiments.plan import RunPlan, canonical_json
 __all__ = ["CompareOptions", "Spec", "SpecError", "format_path", "load_spec", "parse_override"]
 
 #: Sections of a run configuration that arms and design points may override.
-CONFIG_SECTIONS = ("population", "network", "clearing", "drift", "market")
+CONFIG_SECTIONS = ("population", "network", "clearing", "drift", "market", "events", "shop")
+#: Sections only a run mode other than rounds uses (``market.mode``), left out when absent.
+MODE_SECTIONS = {"events": "events", "shop": "shop"}
 #: Spawn key (below the root seed) of the random stream of sampled designs.
 DESIGN_SPAWN_KEY = 0xDE5167
 
@@ -451,7 +455,7 @@ class Spec:
         self.name: str = exp["name"]
         self.description: str = exp["description"]
         self.seed: int = exp["seed"]
-        self.rounds: int = exp["rounds"]
+        self.rounds: int = exp["rounds"] if "rounds" in exp else _timed_rounds(configs)
         self.replicates: int = exp["replicates"]
         for section in ("population", "network", "clearing", "drift", "market", "collect"):
             setattr(self, section, resolved[section])
@@ -572,6 +576,7 @@ class _Builder:
             raise self.error(path, _pydantic_problem(err, path), note=note) from None
         m = model.model_dump(exclude_none=True)
         exp = m["experiment"]
+        self._check_mode(m)
         collect = self._collect(m)
         market = self._market(m, collect)
         arms = m["arms"]
@@ -595,6 +600,7 @@ class _Builder:
             "clearing": m.get("clearing", {"name": "propensity"}),
             "drift": m.get("drift", {"name": "none"}),
             "market": market,
+            **{k: m[k] for k in MODE_SECTIONS if k in m},
         }
         self._check_set_paths(arms, design, points)
         self._cache: dict[str, Any] = {}
@@ -613,10 +619,10 @@ class _Builder:
                 "name": exp["name"],
                 "description": exp.get("description", ""),
                 "seed": exp["seed"],
-                "rounds": exp["rounds"],
+                **({} if getattr(self, "_timed", None) else {"rounds": exp["rounds"]}),
                 "replicates": exp["replicates"],
             },
-            **{k: resolved_base[k] for k in CONFIG_SECTIONS},
+            **{k: resolved_base[k] for k in CONFIG_SECTIONS if k in resolved_base},
             "collect": collect,
             "design": design,
         }
@@ -636,11 +642,23 @@ class _Builder:
 
         c = m["collect"]
         metrics = list(c.get("metrics", DEFAULT_METRICS))
+        shop = m["market"]["mode"] == "shop"  # a shop reports its own figures (supply_chain.py)
+        if shop:
+            from propensim.markets.supply_chain import SHOP_METRICS
+
+            metrics = list(c.get("metrics", SHOP_METRICS))
         for i, name in enumerate(metrics):
             if name in metrics[:i]:
                 raise self.error(
                     ("collect", "metrics", i), f"{name!r} is listed twice; each metric once"
                 )
+            if shop:
+                if name not in SHOP_METRICS:
+                    raise self.error(
+                        ("collect", "metrics", i),
+                        f"{name!r} is not a shop figure; allowed: {', '.join(SHOP_METRICS)}",
+                    )
+                continue
             try:
                 registry.get_plugin("metrics", name)
             except registry.UnknownPluginError as exc:
@@ -664,7 +682,39 @@ class _Builder:
         return {
             "replenish": mk["replenish"],
             "keep_ledger": collect["ledger"] if keep is None else keep,
+            **({"mode": mk["mode"]} if mk["mode"] != "rounds" else {}),
         }
+
+    def _check_mode(self, m: dict) -> None:
+        """``market.mode`` and its section agree; fill ``experiment.rounds`` for timed modes.
+
+        A timed run (events, shop) lasts its horizon; its ``rounds`` are the windows (weeks) of
+        the longest configuration, and each run stops at its own horizon.
+        """
+        exp, mode = m["experiment"], m["market"]["mode"]
+        for section in MODE_SECTIONS:
+            if section in m and section != mode:
+                raise self.error(
+                    (section,), f"is only used with market.mode = {section!r} (mode is {mode!r})"
+                )
+        if mode == "rounds":
+            if "rounds" not in exp:
+                raise self.error(("experiment", "rounds"), "is required (a whole number >= 1)")
+            return
+        if "rounds" in exp:
+            raise self.error(
+                ("experiment", "rounds"),
+                f"is not used with market.mode = {mode!r} (a run lasts "
+                f"{'events.horizon' if mode == 'events' else 'shop.days'}); leave it out",
+            )
+        if mode not in m:
+            raise self.error((mode,), f"section [{mode}] is required with market.mode = {mode!r}")
+        if m.get("interventions") or any(a.get("interventions") for a in m["arms"]):
+            raise self.error(
+                ("interventions",), f"are not available with market.mode = {mode!r} yet"
+            )
+        exp["rounds"] = 1  # not written out: runs take their length from _timed_rounds
+        self._timed = mode
 
     def _compare(self, m: dict, arms: list, collect: dict) -> dict[str, Any] | None:
         names = [a["name"] for a in arms]
@@ -833,6 +883,8 @@ class _Builder:
             _apply_sets(cfg, point_sets, "design")
             out = {}
             for section in CONFIG_SECTIONS:
+                if section in MODE_SECTIONS and cfg.get(section) is None:
+                    continue
                 out[section] = self._section(section, cfg.get(section))
         except _Problem as prob:
             raise fail(prob) from None
@@ -864,7 +916,17 @@ class _Builder:
             return {
                 "replenish": mk.get("replenish", True),
                 "keep_ledger": mk.get("keep_ledger", False),
+                **({"mode": mk["mode"]} if mk.get("mode", "rounds") != "rounds" else {}),
             }
+        if section == "events":
+            ev = _check_model(EventsModel, section, data)
+            ev.setdefault("window", ev["horizon"])
+            ev.setdefault("drift_every", ev["window"])
+            return {k: ev[k] for k in EventsModel.model_fields}
+        if section == "shop":
+            shop = _check_model(ShopModel, section, data)
+            shop.setdefault("initial_stock", shop["order_up_to"])
+            return {k: shop[k] for k in ShopModel.model_fields}
         if section == "drift":
             drift = _check_model(DriftModel, section, data)
             _check_drift(drift)
@@ -872,6 +934,24 @@ class _Builder:
         table = _check_model(PluginModel, section, data)
         _check_plugin(PLUGIN_KINDS[section], (section,), table)
         return _fill_plugin(PLUGIN_KINDS[section], table)
+
+
+def _timed_rounds(configs: dict) -> int:
+    """Windows (events) or weeks (shop) of the longest run configuration of a timed spec.
+
+    Every run gets this many; each stops at its own horizon (``events.horizon``, ``shop.days``).
+    """
+    import math
+
+    most = 1
+    for cfg in configs.values():
+        if "events" in cfg:
+            ev = cfg["events"]
+            most = max(most, math.ceil(ev["horizon"] / ev["window"] - 1e-9))
+        elif "shop" in cfg:
+            shop = cfg["shop"]
+            most = max(most, math.ceil(shop["days"] / shop["week"] - 1e-9))
+    return most
 
 
 def _parse_file(path: Path) -> tuple[dict, _Locator]:

@@ -104,7 +104,9 @@ def build_market(config: Mapping, seed=None, *, mesa: bool = True):
         ``metrics``: list of metric names; ``interventions``: a list of intervention tables
         ``{"name": ..., "start":, "until":, **params}`` acting in order (see
         :func:`build_interventions`); ``market``: ``replenish``, ``traders_every``,
-        ``keep_ledger``, ``keep_totals``.
+        ``keep_ledger``, ``keep_totals``, and ``mode``: ``"events"`` builds the continuous-time
+        :class:`~propensim.markets.events.EventMarket` (options in ``events``), ``"shop"`` the
+        :class:`~propensim.markets.supply_chain.Shop` (options in ``shop``).
     seed : int or SeedSequence
         Root seed of the run; population and network come from their own named streams.
     mesa : bool
@@ -119,6 +121,13 @@ def build_market(config: Mapping, seed=None, *, mesa: bool = True):
     from propensim.markets.engine import MarketEngine
     from propensim.plugins.networks import build_network
 
+    mode = (config.get("market") or {}).get("mode", "rounds")
+    if mode in ("events", "shop"):  # continuous time: markets/events.py, markets/supply_chain.py
+        from propensim.markets import events, supply_chain
+
+        return (events.build_event_market if mode == "events" else supply_chain.build_shop)(
+            config, seed
+        )
     streams = spawn_streams(seed)
     pop_conf = dict(config.get("population") or {})
     missing = [k for k in ("n_buyers", "n_sellers") if k not in pop_conf]
