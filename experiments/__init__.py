@@ -45,6 +45,8 @@ _NAMES = {
     "recover_curves": "calibrate_api",
     "tune_market": "calibrate_api",
     "CalibrationError": "calibrate_api",
+    "Backend": "runner",
+    "open_backend": "runner",
 }
 
 __all__ = sorted(_NAMES)

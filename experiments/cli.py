@@ -174,6 +174,37 @@ def _add_calibration_parsers(sub) -> None:
     q.add_argument("--by", default="trader", help="with --meetings: trader, or a column suffix")
     q.add_argument("--out", help="results folder (default ./results/acceptance-<file>)")
 
+    q = sub.add_parser("tune", help="fit market parameters to target metrics (simulated moments)")
+    q.add_argument("spec", help="spec file (TOML): the market to tune")
+    q.add_argument(
+        "--target",
+        action="append",
+        default=[],
+        metavar="METRIC=VALUE[:SD]",
+        help="target of a collected metric, optionally with its sd (repeatable)",
+    )
+    q.add_argument(
+        "--param",
+        action="append",
+        default=[],
+        metavar="PATH=LOW:HIGH",
+        help="spec field to tune and its range, e.g. population.sigma=2:12 (repeatable)",
+    )
+    q.add_argument("--replicates", type=int, default=8, help="runs per candidate (default 8)")
+    q.add_argument("--initial", type=int, help="first-design candidates (default 8 x params)")
+    q.add_argument("--max-evals", type=int, default=60, help="refinement candidates (default 60)")
+    q.add_argument(
+        "--target-runs",
+        type=_positive_int,
+        default=1,
+        help="targets without an SD are means of this many observed markets (default 1)",
+    )
+    q.add_argument("--out", help="results folder (default ./results/<name>-tuning)")
+    q.add_argument("--workers", type=_positive_int, help="local worker processes (default: CPUs)")
+    q.add_argument("--scheduler", metavar="ADDR", help="run on a Dask scheduler")
+    add = q.add_argument
+    add("--set", dest="overrides", action="append", default=[], metavar="PATH=VALUE")
+
 
 def _add_report_parsers(sub, add_set) -> None:
     """``report``, ``sensitivity`` and ``describe`` (see propensim.experiments.report)."""
@@ -622,6 +653,13 @@ def cmd_acceptance(args) -> int:
     return 0
 
 
+def cmd_tune(args) -> int:
+    """``propensim tune``."""
+    from propensim.experiments.tuning import tune_from_cli
+
+    return tune_from_cli(args)
+
+
 def _float_arg(text: str) -> float:
     try:
         return float(text)
@@ -634,6 +672,7 @@ def _float_arg(text: str) -> float:
 COMMANDS = {
     "calibrate": cmd_calibrate,
     "acceptance": cmd_acceptance,
+    "tune": cmd_tune,
     "run": cmd_run,
     "check": cmd_check,
     "compare": cmd_compare,

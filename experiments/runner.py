@@ -488,6 +488,141 @@ def _backend(workers, scheduler, dask_local, n_tasks: int):
     return _InProcess() if workers == 1 else _LocalPool(workers)
 
 
+# -- the public backend: open across batches -----------------------------------------------
+class Batch:
+    """Runs submitted together to an open :class:`Backend`; :meth:`wait` gives their results."""
+
+    def __init__(self, tasks: list[tuple[Any, list[RunPlan]]]) -> None:
+        self._tasks = tasks
+        self._results: list[RunResult] | None = None
+
+    def done(self) -> bool:
+        """True once every run has finished (never blocks)."""
+        if self._results is not None:
+            return True
+        return all(getattr(fut, "done", lambda: True)() for fut, _ in self._tasks)
+
+    def wait(self) -> list[RunResult]:
+        """Block until every run has finished; the results in the order the plans were given.
+
+        A task that failed as a whole (a worker died) gives a failed result for each of its
+        plans, as in a sweep; a run that raised is a failed result, never an exception here.
+        """
+        if self._results is None:
+            out: list[RunResult] = []
+            for fut, plans in self._tasks:
+                try:
+                    results = fut.result()
+                except Exception as exc:  # the task itself failed
+                    results = [_task_failure(plan, exc) for plan in plans]
+                out.extend(r._to_frames() for r in results)
+            self._results = out
+        return self._results
+
+    @property
+    def results(self) -> list[RunResult]:
+        """The same as :meth:`wait`."""
+        return self.wait()
+
+
+class Backend:
+    """An open backend (this process, a local process pool or Dask) that runs many batches.
+
+    Make one with :func:`open_backend`; use it as a context manager or call :meth:`close`.
+    Workers start once and serve every batch, which is what iterative methods (calibration,
+    sensitivity) need: :func:`run_plans` with ``backend=`` runs each batch into its own
+    results folder (resumable) without closing it.
+    """
+
+    def __init__(self, impl) -> None:
+        self._impl = impl
+        self._closed = False
+
+    @property
+    def kind(self) -> str:
+        """``"in-process"``, ``"local"`` or ``"dask"``."""
+        return self._impl.kind
+
+    @property
+    def n_workers(self) -> int:
+        """Workers (processes or Dask threads) that run tasks."""
+        return int(self._impl.n_workers)
+
+    def describe(self) -> dict[str, Any]:
+        """Kind, workers and (pool) start method or (Dask) scheduler, as recorded in manifests."""
+        return self._impl.describe()
+
+    def _live(self):
+        if self._closed:
+            raise BackendError("this backend is closed; open a new one with open_backend()")
+        return self._impl
+
+    def submit(self, plans: Sequence[RunPlan]) -> Batch:
+        """Send plans to the workers now, in tasks of several runs each; returns at once."""
+        impl = self._live()
+        plans = list(plans)
+        if not plans:
+            return Batch([])
+        per_task = max(1, math.ceil(len(plans) / (2 * max(1, self.n_workers))))
+        if isinstance(impl, _InProcess):
+            per_task = len(plans)
+        chunks = [plans[i : i + per_task] for i in range(0, len(plans), per_task)]
+        return Batch([(impl.submit(chunk), chunk) for chunk in chunks])
+
+    def run(self, plans: Sequence[RunPlan]) -> list[RunResult]:
+        """:meth:`submit` then :meth:`Batch.wait`: the results in plan order."""
+        return self.submit(plans).wait()
+
+    def close(self, cancel: bool = False) -> None:
+        """Stop the workers (``cancel=True`` drops tasks not yet started). Idempotent."""
+        if not self._closed:
+            self._closed = True
+            self._impl.close(cancel=cancel)
+
+    def __enter__(self) -> Backend:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        self.close(cancel=exc_type is not None)
+
+    def __repr__(self) -> str:
+        state = "closed" if self._closed else "open"
+        return f"Backend(kind={self.kind!r}, workers={self.n_workers}, {state})"
+
+
+def open_backend(
+    workers: int | None = None, scheduler: str | None = None, dask_local: int | None = None
+) -> Backend:
+    """Open a backend that stays open across batches of runs.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Local worker processes (default: the CPUs available; 1 runs in this process).
+    scheduler : str, optional
+        Address of a Dask scheduler (``"tcp://host:8786"``).
+    dask_local : int, optional
+        Start a local Dask cluster of this many worker processes.
+
+    Returns
+    -------
+    Backend
+
+    Examples
+    --------
+    >>> with open_backend(workers=2) as backend:  # doctest: +SKIP
+    ...     first = backend.run(plans[:10])
+    ...     store = run_plans(plans[10:], "results/next", backend=backend)
+    """
+    _check_backend(workers, scheduler, dask_local)
+    if scheduler is not None:
+        return Backend(_Dask(scheduler=str(scheduler)))
+    if dask_local is not None:
+        return Backend(_Dask(local=int(dask_local)))
+    n = workers or available_cpus()
+    return Backend(_InProcess() if n == 1 else _LocalPool(n))
+
+
 # -- the sweep loop ------------------------------------------------------------------------
 class _Batcher:
     """Batch sizes from the observed cost per run (median of the runs seen so far)."""
@@ -681,6 +816,7 @@ def run_plans(
     progress: bool | None = None,
     flush_interval: float = 1.0,
     command: Sequence[str] | None = None,
+    backend: Backend | None = None,
 ) -> Store:
     """Run plans into a results folder, resuming what is already stored there.
 
@@ -701,6 +837,9 @@ def run_plans(
         See :func:`run_experiment`.
     flush_interval : float
         Seconds between commits to the folder (at most this much work is lost to a crash).
+    backend : Backend, optional
+        An open backend (:func:`open_backend`) to run on instead of opening one from
+        ``workers``/``scheduler``/``dask_local``; it is left open.
 
     Returns
     -------
@@ -714,6 +853,7 @@ def run_plans(
         If ``out`` holds another experiment or unreadable files.
     """
     plans = sorted(plans, key=lambda p: p.index)
+    shared = backend  # an open Backend, used and left open
     indices = [p.index for p in plans]
     if len(set(indices)) != len(indices):
         raise ValueError("plans must have distinct index values")
@@ -745,7 +885,10 @@ def run_plans(
     bar = _Progress(enabled, pending_rows, name)
     try:
         if todo:
-            backend = _backend(workers, scheduler, dask_local, len(todo))
+            if shared is not None:
+                backend = shared._live()
+            else:
+                backend = _backend(workers, scheduler, dask_local, len(todo))
             store.manifest["backend"] = backend.describe()
             _sweep(
                 backend,
@@ -766,7 +909,7 @@ def run_plans(
         raise
     finally:
         bar.close()
-        if backend is not None:
+        if backend is not None and shared is None:
             backend.close(cancel=status != "complete")
         if store.counts()["failed"] and status == "complete":
             status = "complete-with-failures"
