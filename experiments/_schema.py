@@ -179,6 +179,7 @@ class CollectModel(_Model):
     traders_every: int = Field(default=0, ge=0)
     ledger: bool = False
     metrics: list[str] | None = Field(default=None, min_length=1)
+    totals: bool | None = None
 
 
 class DesignModel(_Model):
@@ -197,6 +198,7 @@ class ArmModel(_Model):
     name: str = Field(pattern=_NAME_PATTERN)
     description: str = ""
     set: dict[str, Any] = Field(default_factory=dict)
+    interventions: list[PluginModel] = Field(default_factory=list)
 
 
 class CompareModel(_Model):
@@ -221,6 +223,7 @@ class SpecModel(_Model):
     design: DesignModel = Field(default_factory=DesignModel)
     events: EventsModel | None = None
     shop: ShopModel | None = None
+    interventions: list[PluginModel] = Field(default_factory=list)
     arms: list[ArmModel] = Field(default_factory=list)
     compare: CompareModel | None = None
 

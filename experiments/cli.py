@@ -116,7 +116,9 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--metric", action="append", default=[], help="metric (repeatable)")
     q.add_argument("--baseline", help="arm to compare against (default: the spec's)")
     q.add_argument("--by-point", action="store_true", help="also one row per design point")
-    q.add_argument("--csv", help="CSV file to write (default FOLDER/comparison.csv)")
+    q.add_argument(
+        "--csv", help="also write the table to this CSV file (the folder is never written)"
+    )
 
     q = sub.add_parser("query", help="run SQL (DuckDB) over a results folder")
     q.add_argument("folder", help="results folder")
@@ -274,6 +276,8 @@ def _sweep(spec, out, *, workers, scheduler=None, dask_local=None, fail_fast=Fal
 
         print(format_table(store.comparison))
         print()
+    print(CAUTION)
+    print()
     line = f"{counts['runs']} runs: {counts['ok']} ok, {counts['failed']} failed"
     if counts["failed"]:
         line += f" (errors in {store.path / 'failures.parquet'})"
@@ -319,7 +323,7 @@ def pilot_seconds(plans, budget: float = 0.05) -> tuple[float, int]:
     import warnings
 
     from propensim.experiments.runner import _market_config
-    from propensim.markets.engine import build_market
+    from propensim.markets.build import build_market
 
     firsts = list({p.arm: p for p in reversed(plans)}.values())[::-1][:8]
     estimates, timed_total = [], 0
@@ -402,23 +406,62 @@ def cmd_check(args) -> int:
 
 
 def cmd_compare(args) -> int:
-    """``propensim compare``."""
-    from propensim.experiments.compare import compare_folder, format_table
+    """``propensim compare``: paired differences, plain statements, who gains and who loses.
+
+    Reads the results folder and never writes into it; ``--csv FILE`` saves the table.
+    """
+    from propensim.experiments.compare import compare_folder, format_table, statements
     from propensim.experiments.store import StoreError, atomic_write_bytes
 
     try:
         table = compare_folder(
             args.folder, args.metric or None, args.baseline, by_point=args.by_point
         )
+        groups = _group_table(args.folder, args.baseline)
     except StoreError:
         raise
     except ValueError as exc:  # bad metric, baseline or folder content: the user's input
         raise InputError(_one_line(exc)) from None
     print(format_table(table))
-    target = Path(args.csv) if args.csv else Path(args.folder) / "comparison.csv"
-    atomic_write_bytes(target, table.to_csv(index=False).encode())
-    print(f"written: {target}")
+    print()
+    for line in statements(table):
+        print(f"- {line}")
+    if groups is not None:
+        from propensim.experiments.gains import format_groups, group_statements
+
+        print()
+        print("Who gains and who loses (surplus per group over a run, paired by trader):")
+        print(format_groups(groups))
+        print()
+        for line in group_statements(groups):
+            print(f"- {line}")
+    print()
+    print(CAUTION)
+    if args.csv:
+        target = Path(args.csv)
+        atomic_write_bytes(target, table.to_csv(index=False).encode())
+        print(f"written: {target}")
     return 0
+
+
+def _group_table(folder, baseline):
+    """Per-group surplus differences when the store holds per-trader totals, else None."""
+    from propensim.experiments.compare import settings_from_manifest
+    from propensim.experiments.gains import compare_groups
+    from propensim.experiments.store import load
+
+    results = load(Path(folder))
+    totals = results.totals
+    if totals is None or len(totals) == 0:
+        return None
+    settings = settings_from_manifest(results.manifest, results.runs)
+    return compare_groups(
+        results.runs,
+        totals,
+        baseline or settings["baseline"],
+        confidence=settings["confidence"],
+        bootstrap=settings["bootstrap"],
+    )
 
 
 def cmd_query(args) -> int:

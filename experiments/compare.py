@@ -6,10 +6,12 @@ the population and network noise they share cancels, and a paired comparison nee
 replicates than comparing two independent samples.
 
 For each metric and each arm against the baseline the table gives the mean paired difference, a
-bootstrap percentile confidence interval of that mean, and the share of pairs in which each side is
-better (ties split half and half). "Better" follows the metric's ``better`` attribute (higher
-efficiency, lower price dispersion); for a metric with no better direction (a price level) it
-means higher, and the table says so.
+bootstrap percentile confidence interval of that mean, the share of bootstrap resamples whose
+mean difference is above zero (``p_up``), and the share of pairs in which each side is better
+(ties split half and half). "Better" follows the metric's ``better`` attribute (higher
+efficiency, lower price dispersion); a metric with no better direction (a price level, tax
+revenue) gets no "better" and no win share. :func:`statements` turns each row into one plain
+sentence with the calibrated likelihood terms of MODEL.md section 9.
 
 References
 ----------
@@ -38,6 +40,7 @@ COLUMNS = (
     "ci_low",
     "ci_high",
     "confidence",
+    "p_up",
     "better",
     "arm_wins",
     "baseline_wins",
@@ -74,10 +77,22 @@ def bootstrap_mean_ci(
     ----------
     Efron and Tibshirani (1993), ch. 13: the percentile interval.
     """
+    lo, hi, _ = bootstrap_mean(diffs, confidence=confidence, n_resamples=n_resamples, rng=rng)
+    return lo, hi
+
+
+def bootstrap_mean(
+    diffs: np.ndarray, *, confidence: float, n_resamples: int, rng: np.random.Generator
+) -> tuple[float, float, float]:
+    """Percentile interval of the mean of ``diffs`` and the share of resample means above 0.
+
+    The share counts a resample mean of exactly 0 as half (so identical arms give 0.5).
+    Same draws as :func:`bootstrap_mean_ci`.
+    """
     diffs = np.asarray(diffs, dtype=float)  # shape: (n,)
     n = diffs.size
     if n == 0:
-        return float("nan"), float("nan")
+        return float("nan"), float("nan"), float("nan")
     means = np.empty(n_resamples)  # shape: (n_resamples,)
     per_chunk = max(1, _CHUNK // n)
     for start in range(0, n_resamples, per_chunk):
@@ -86,7 +101,8 @@ def bootstrap_mean_ci(
         means[start:stop] = diffs[idx].mean(axis=1)
     alpha = 1.0 - confidence
     lo, hi = np.quantile(means, [alpha / 2, 1 - alpha / 2])
-    return float(lo), float(hi)
+    up = (np.count_nonzero(means > 0) + 0.5 * np.count_nonzero(means == 0)) / n_resamples
+    return float(lo), float(hi), float(up)
 
 
 def _check(confidence, bootstrap) -> None:
@@ -128,7 +144,8 @@ def compare_arms(
         One row per design point as well (column ``point``).
     directions : dict, optional
         ``metric -> "higher" | "lower" | None``: which direction is better. ``arm_wins`` counts
-        the pairs where the arm is better; ``None`` or a missing metric counts "higher".
+        the pairs where the arm is better; for ``None`` or a missing metric there is no better
+        direction and ``arm_wins`` is NaN.
 
     Returns
     -------
@@ -148,7 +165,8 @@ def compare_arms(
     >>> import pandas as pd
     >>> runs = pd.DataFrame({"arm": ["a", "b"] * 3, "point": 0, "replicate": [0, 0, 1, 1, 2, 2],
     ...                      "volume": [10.0, 12.0, 11.0, 12.5, 9.0, 11.0]})
-    >>> table = compare_arms(runs, "volume", baseline="a", bootstrap=200)
+    >>> table = compare_arms(runs, "volume", baseline="a", bootstrap=200,
+    ...                      directions={"volume": "higher"})
     >>> float(table.loc[0, "mean_diff"]), float(table.loc[0, "arm_wins"])
     (1.8333333333333333, 1.0)
     """
@@ -222,10 +240,12 @@ def compare_arms(
 def _row(metric, arm, baseline, point, a, b, confidence, n_resamples, rng, way) -> dict:
     diffs = a - b  # shape: (n_pairs,)
     n = diffs.size
-    lo, hi = bootstrap_mean_ci(diffs, confidence=confidence, n_resamples=n_resamples, rng=rng)
+    lo, hi, up = bootstrap_mean(diffs, confidence=confidence, n_resamples=n_resamples, rng=rng)
     arm_better = diffs < 0 if way == "lower" else diffs > 0
     tied = diffs == 0
     wins = (np.count_nonzero(arm_better) + 0.5 * np.count_nonzero(tied)) / n if n else np.nan
+    if way is None:  # no better direction: no win share either
+        wins = np.nan
     return {
         "metric": metric,
         "arm": arm,
@@ -238,9 +258,10 @@ def _row(metric, arm, baseline, point, a, b, confidence, n_resamples, rng, way) 
         "ci_low": lo,
         "ci_high": hi,
         "confidence": float(confidence),
+        "p_up": up,
         "better": way,
         "arm_wins": float(wins),
-        "baseline_wins": float(1 - wins) if n else np.nan,
+        "baseline_wins": float(1 - wins) if np.isfinite(wins) else np.nan,
     }
 
 
@@ -334,8 +355,8 @@ def format_table(table) -> str:
             f"{r['mean_diff']:+.4g}",
             f"{r['ci_low']:+.4g}",
             f"{r['ci_high']:+.4g}",
-            r["better"] if isinstance(r["better"], str) else "(higher)",
-            "nan" if pd.isna(r["arm_wins"]) else f"{100 * r['arm_wins']:.0f}%",
+            r["better"] if isinstance(r["better"], str) else "-",
+            "-" if pd.isna(r["arm_wins"]) else f"{100 * r['arm_wins']:.0f}%",
         ]
         lines.append(cells)
     widths = [max([len(h), *(len(c[i]) for c in lines)]) for i, h in enumerate(header)]
@@ -373,3 +394,85 @@ def point_means(runs, metrics: Sequence[str], parameters: Sequence[str]):
     table = grouped[list(metrics)].mean()
     table.insert(0, "n", grouped.size())
     return table.reset_index()
+
+
+# -- plain language (MODEL.md section 9) ----------------------------------------------------------
+def likelihood_term(p: float) -> str:
+    """The calibrated term for a probability ``p`` (share of bootstrap resamples).
+
+    The scale of Mastrandrea et al. (2010), the IPCC guidance note for lead authors on the
+    consistent treatment of uncertainties. Strict bounds as in MODEL.md section 9: "virtually
+    certain" above 99%, "very likely" above 90%, "likely" above 66%, "about as likely as not"
+    from 33% to 66%, "unlikely" below 33%, "very unlikely" below 10%, "exceptionally unlikely"
+    below 1%.
+    """
+    if not np.isfinite(p):
+        return "not assessable"
+    if p > 0.99:
+        return "virtually certain"
+    if p > 0.90:
+        return "very likely"
+    if p > 0.66:
+        return "likely"
+    if p >= 0.33:
+        return "about as likely as not"
+    if p >= 0.10:
+        return "unlikely"
+    if p >= 0.01:
+        return "very unlikely"
+    return "exceptionally unlikely"
+
+
+def _amount(x: float, base: float) -> tuple[str, bool]:
+    """A change as a percentage of the baseline mean when that is meaningful, else absolute."""
+    if np.isfinite(base) and abs(base) > 1e-12:
+        return f"{100 * x / abs(base):.3g}%", True
+    return f"{x:.4g}", False
+
+
+def statements(table) -> list[str]:
+    """One plain sentence per row of a comparison table.
+
+    Example: "volume: falls by 12% in tax against baseline (95% interval 9% to 15%); a fall is
+    very likely (98% of resamples)". The likelihood is the share of bootstrap resamples of the
+    mean paired difference on the side of the estimate, named by :func:`likelihood_term`.
+    Whether the change is good is said only for metrics with a better direction.
+    """
+    out = []
+    for r in table.to_dict("records"):
+        if "point" in r and r["point"] is not None and not _isna(r["point"]):
+            continue  # the overall rows speak for the design
+        name, arm, base = r["metric"], r["arm"], r["baseline"]
+        n, diff, up = r["n_pairs"], r["mean_diff"], r["p_up"]
+        if not n or not np.isfinite(diff):
+            out.append(f"{name}: no finite pairs to compare in {arm} against {base}")
+            continue
+        if diff == 0 and r["ci_low"] == 0 and r["ci_high"] == 0:
+            out.append(f"{name}: identical in {arm} and {base} in every pair")
+            continue
+        rises = diff > 0
+        share = up if rises else 1.0 - up
+        mean_b = r["mean_baseline"]
+        size, _ = _amount(abs(diff), mean_b)
+        lo, _ = _amount(r["ci_low"], mean_b)
+        hi, _ = _amount(r["ci_high"], mean_b)
+        level = f"{round(100 * r['confidence'])}%"
+        verb, noun = ("rises", "a rise") if rises else ("falls", "a fall")
+        text = (
+            f"{name}: {verb} by {size} in {arm} against {base} ({level} interval of the change "
+            f"{lo} to {hi}); {noun} is {likelihood_term(share)} ({100 * share:.0f}% of "
+            f"resamples, {n} pairs)"
+        )
+        way = r.get("better")
+        if isinstance(way, str):
+            good = rises == (way == "higher")
+            text += "; for this metric that is " + ("better" if good else "worse")
+        out.append(text)
+    return out
+
+
+def _isna(x) -> bool:
+    try:
+        return bool(np.isnan(x))
+    except TypeError:
+        return x is None

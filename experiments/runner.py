@@ -121,6 +121,7 @@ class RunResult:
     rounds: Any = None
     traders: Any = None
     ledger: Any = None
+    totals: Any = None
     error_type: str | None = None
     error_message: str | None = None
     traceback: str | None = None
@@ -136,7 +137,7 @@ class RunResult:
 
     def _to_frames(self) -> RunResult:
         """Turn tables that arrived as column dicts into pandas DataFrames (in place)."""
-        for name in ("rounds", "traders", "ledger"):
+        for name in ("rounds", "traders", "ledger", "totals"):
             table = getattr(self, name)
             if isinstance(table, dict):
                 import pandas as pd
@@ -153,6 +154,7 @@ def _market_config(plan: RunPlan) -> dict[str, Any]:
     market["traders_every"] = int(collect.get("traders_every", 0) or 0)
     # What is kept is decided by [collect]: the ledger costs memory and nothing reads it otherwise.
     market["keep_ledger"] = bool(collect.get("ledger", False))
+    market["keep_totals"] = bool(collect.get("totals", False))
     config["market"] = market
     return config
 
@@ -187,7 +189,7 @@ def run_one(plan: RunPlan) -> RunResult:
 
 def _run(plan: RunPlan) -> RunResult:
     """:func:`run_one` with its tables as column dicts (name -> array): no pandas needed."""
-    from propensim.markets.engine import build_market
+    from propensim.markets.build import build_market
 
     t0 = time.perf_counter()
     collect = plan.collect or {}
@@ -204,10 +206,12 @@ def _run(plan: RunPlan) -> RunResult:
                 result.traders = market.traders_columns()
             if collect.get("ledger", False):
                 result.ledger = market.ledger_columns()
+            if collect.get("totals", False):
+                result.totals = market.totals_columns()
         except Exception as exc:  # a failing run is a result, not a crash of the sweep
             result.status = "failed"
             result.summary = {}
-            result.rounds = result.traders = result.ledger = None
+            result.rounds = result.traders = result.ledger = result.totals = None
             result.error_type = type(exc).__name__
             result.error_message = str(exc)
             result.traceback = _traceback.format_exc()

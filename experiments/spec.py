@@ -494,6 +494,8 @@ class Spec:
         read-only.
         """
         collect = {k: self.collect[k] for k in ("rounds", "traders_every", "ledger")}
+        if self.collect.get("totals"):  # only when kept: run ids of other specs stay as they were
+            collect["totals"] = True
         arms = self.arm_names or [""]
         plans = []
         for p, params in enumerate(self.points):
@@ -605,7 +607,13 @@ class _Builder:
         self._check_set_paths(arms, design, points)
         self._cache: dict[str, Any] = {}
         resolved_base = self._resolve_config(base, None, None, {})
+        top = self._interventions(m.get("interventions") or [], ("interventions",), exp)
+        per_arm = [
+            self._interventions(arm.get("interventions") or [], ("arms", a, "interventions"), exp)
+            for a, arm in enumerate(arms)
+        ]
         configs = {}
+        checked_markets: set[str] = set()
         for p, point in enumerate(points):
             for a in range(n_arms):
                 arm = arms[a] if arms else None
@@ -613,6 +621,10 @@ class _Builder:
                 # sections are shared between configs (cached): build new dicts on top
                 cfg["market"] = {**cfg["market"], "traders_every": collect["traders_every"]}
                 cfg["metrics"] = list(collect["metrics"])
+                items = [*top, *(per_arm[a] if arms else [])]
+                if items:
+                    cfg["interventions"] = items
+                    self._check_interventions_on(cfg, exp["seed"], arm, checked_markets)
                 configs[(p, a)] = cfg
         resolved = {
             "experiment": {
@@ -626,10 +638,13 @@ class _Builder:
             "collect": collect,
             "design": design,
         }
+        if top:
+            resolved["interventions"] = top
         if arms:
             resolved["arms"] = [
                 {"name": a["name"], "description": a.get("description", ""), "set": a["set"]}
-                for a in arms
+                | ({"interventions": per_arm[i]} if per_arm[i] else {})
+                for i, a in enumerate(arms)
             ]
         if compare is not None:
             resolved["compare"] = compare
@@ -647,6 +662,10 @@ class _Builder:
             from propensim.markets.supply_chain import SHOP_METRICS
 
             metrics = list(c.get("metrics", SHOP_METRICS))
+        # Per-trader totals (who gains, who loses) by default when the spec has interventions.
+        any_interventions = bool(m.get("interventions")) or any(
+            a.get("interventions") for a in m["arms"]
+        )
         for i, name in enumerate(metrics):
             if name in metrics[:i]:
                 raise self.error(
@@ -668,6 +687,7 @@ class _Builder:
             "traders_every": c["traders_every"],
             "ledger": c["ledger"],
             "metrics": metrics,
+            "totals": any_interventions if c.get("totals") is None else c["totals"],
         }
 
     def _market(self, m: dict, collect: dict) -> dict[str, Any]:
@@ -840,6 +860,68 @@ class _Builder:
             for key, value in point.items():
                 src = ("design", "points", i, key) if design["kind"] == "points" else None
                 check(key, src or ("design", "parameters", key), value)
+
+    def _interventions(self, items: list, where: tuple, exp: dict) -> list[dict[str, Any]]:
+        """Check each intervention table (plugin, parameters, rounds); fill its defaults."""
+        out = []
+        rounds = int(exp["rounds"])
+        for i, table in enumerate(items):
+            path = (*where, i)
+            try:
+                _check_plugin("interventions", path, table)
+            except _Problem as prob:
+                raise self.error(prob.path, prob.problem) from None
+            filled = _fill_plugin("interventions", table)
+            start, until = filled.get("start", 0), filled.get("until")
+            if isinstance(start, int) and start >= rounds:
+                raise self.error(
+                    (*path, "start"),
+                    f"is round {start} but the run has rounds 0..{rounds - 1} "
+                    "(experiment.rounds); allowed: 0.." + str(rounds - 1),
+                )
+            if isinstance(until, int) and until > rounds:
+                raise self.error(
+                    (*path, "until"),
+                    f"is round {until} but the run ends after round {rounds - 1} "
+                    f"(experiment.rounds = {rounds}); allowed: up to {rounds}, or leave it out",
+                )
+            out.append(filled)
+        return out
+
+    def _check_interventions_on(self, cfg: dict, seed: int, arm, seen: set) -> None:
+        """Check the interventions against a market built from ``cfg`` (ids, attributes, k).
+
+        One market per distinct configuration, built with the first replicate's seed (sizes,
+        roles and network attributes do not depend on the seed).
+        """
+        import warnings as _warnings
+
+        from propensim.markets.build import build_market
+
+        key = canonical_json({k: cfg[k] for k in ("population", "network", "clearing")})
+        key += canonical_json(cfg["interventions"])
+        if key in seen:
+            return
+        seen.add(key)
+        try:
+            with _warnings.catch_warnings():
+                _warnings.simplefilter("ignore")
+                build_market({**cfg, "metrics": []}, seed, mesa=False)
+        except ValueError as exc:
+            text = str(exc)
+            m = re.match(r"interventions\[(\d+)\] \(([^)]*)\): (.*)", text)
+            if not m:
+                raise
+            i = int(m.group(1))
+            n_top = len(self.raw.get("interventions") or [])
+            if arm is not None and i >= n_top:
+                a = [x["name"] for x in self.raw.get("arms", [])].index(arm["name"])
+                path: tuple = ("arms", a, "interventions", i - n_top)
+            else:
+                path = ("interventions", i)
+            names = _parameters("interventions", m.group(2)) if m.group(2) else {}
+            param = _param_in_message(m.group(3), names)
+            raise self.error((*path, param) if param else path, m.group(3)) from None
 
     # -- one run configuration -------------------------------------------------------------------
     def _resolve_config(

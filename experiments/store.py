@@ -10,6 +10,7 @@ Layout of a folder::
     failures.parquet       error type, message and traceback of every run that failed
     rounds/part-NNNNN.parquet   round tables of many runs each, with a ``run_id`` column
     traders/, ledger/      likewise, when the spec collects them
+    totals/                each trader's surplus over the run with its groups (collect.totals)
     comparison.csv         paired arm comparisons (written by ``propensim run`` / ``compare``)
 
 Crash safety. Every file is written whole to a temporary file in the same folder, flushed to disk
@@ -46,7 +47,7 @@ from typing import Any
 
 FORMAT = "propensim-results"
 FORMAT_VERSION = 1
-TABLES = ("rounds", "traders", "ledger")
+TABLES = ("rounds", "traders", "ledger", "totals")
 PACKAGES = ("propensim", "numpy", "scipy", "mesa", "networkx", "pandas", "pyarrow")
 
 #: Columns of runs.parquet before the design parameters and after them (metrics come between).
@@ -696,6 +697,11 @@ class Results:
     def ledger(self):
         """Every kept trade of all stored runs."""
         return self._parts("ledger")
+
+    @cached_property
+    def totals(self):
+        """Each trader's surplus over each run, with the columns that group traders."""
+        return self._parts("totals")
 
     def __repr__(self) -> str:
         return f"Results({str(self.path)!r}, counts={self.manifest.get('counts')})"

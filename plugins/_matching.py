@@ -182,10 +182,22 @@ def propensity_round(
     turn = _turn_keys(hit, rows, meetings, rng)  # shape: (n_hit,)
 
     def prices(at: np.ndarray) -> np.ndarray:
-        """One price per agreed meeting ``at`` (positions), drawn from its joint curve."""
+        """One price per agreed meeting ``at`` (positions), drawn from its joint curve.
+
+        Under price bounds, a draw that falls outside is replaced by a draw from the joint
+        curve restricted to the bounds: the mixture is exactly the restricted curve, and a
+        bound that never binds uses no extra draw (results identical to no bound).
+        """
+        price = unbounded_prices(at)
         if bounded:
-            mean, sd = _joint_normal(pop, rows[at], s[at])
-            return _truncated_normal(rng, mean, sd, state.price_floor, state.price_ceiling)
+            lo, hi = state.price_floor, state.price_ceiling
+            out = np.flatnonzero((price < lo) | (price > hi))
+            if out.size:
+                mean, sd = _joint_normal(pop, rows[at[out]], s[at[out]])
+                price[out] = _truncated_normal(rng, mean, sd, lo, hi)
+        return price
+
+    def unbounded_prices(at: np.ndarray) -> np.ndarray:
         if not normal:
             joint = _joint_of(pop, rows[at], s[at], grid_points)
             return np.asarray(joint.sample_price(rng), dtype=float).reshape(-1)

@@ -408,6 +408,13 @@ class _Bound(_Window):
             )
 
 
+def _overlap(a, b) -> bool:
+    """True if two interventions act in at least one common round."""
+    a_end = math.inf if a.until is None else a.until
+    b_end = math.inf if b.until is None else b.until
+    return max(a.start, b.start) < min(a_end, b_end)
+
+
 class PriceCeiling(_Bound):
     """No trade above ``price`` (MODEL.md section 9 gives the meaning for each clearing rule).
 
@@ -424,6 +431,13 @@ class PriceCeiling(_Bound):
     def validate(self, market) -> None:
         """The rule must honour price bounds; the ceiling may not lie below a floor in force."""
         self._honoured(market)
+        for j, other in enumerate(getattr(market, "schedule", None).interventions):
+            if isinstance(other, PriceFloor) and _overlap(self, other) and other.price > self.price:
+                raise ValueError(
+                    f"price {self.price} is below the price floor {other.price} of "
+                    f"interventions[{j}] in the same rounds; allowed: a ceiling at or above "
+                    "every floor in force"
+                )
 
     def begin(self, market, rng: np.random.Generator) -> None:
         """Set the ceiling."""

@@ -62,7 +62,8 @@ def test_known_positive_shift_excludes_zero():
     shared = rng.normal(100, 20, size=30)  # large noise common to both arms of a pair
     base = shared + rng.normal(0, 0.5, 30)
     arm = shared + 1.0 + rng.normal(0, 0.5, 30)
-    row = compare_arms(_runs(base, arm), ["m"], "a", seed=0).iloc[0]
+    up = {"m": "higher"}
+    row = compare_arms(_runs(base, arm), ["m"], "a", seed=0, directions=up).iloc[0]
     assert row["ci_low"] > 0 and row["ci_low"] < 1.0 < row["ci_high"]
     assert row["mean_diff"] == pytest.approx((arm - base).mean())
     assert row["arm_wins"] > 0.85 and row["arm_wins"] + row["baseline_wins"] == 1
@@ -74,12 +75,13 @@ def test_known_positive_shift_excludes_zero():
 
 def test_identical_arms_give_zero_and_half_wins():
     base = np.random.default_rng(4).normal(size=25)
-    row = compare_arms(_runs(base, base.copy()), "m", "a").iloc[0]
+    row = compare_arms(_runs(base, base.copy()), "m", "a", directions={"m": "higher"}).iloc[0]
     assert row["ci_low"] <= 0 <= row["ci_high"]
     assert row["mean_diff"] == 0 and row["arm_wins"] == 0.5  # all ties, split half and half
     # Same distribution, independent draws: the interval covers 0 (seeded data).
     rng = np.random.default_rng(8)
-    row = compare_arms(_runs(rng.normal(size=200), rng.normal(size=200)), "m", "a").iloc[0]
+    runs = _runs(rng.normal(size=200), rng.normal(size=200))
+    row = compare_arms(runs, "m", "a", directions={"m": "higher"}).iloc[0]
     assert row["ci_low"] < 0 < row["ci_high"] and 0.4 < row["arm_wins"] < 0.6
 
 
@@ -169,7 +171,8 @@ def test_wins_follow_the_metrics_better_direction():
     lower = compare_arms(runs, "price_sd", "a", bootstrap=200, directions={"price_sd": "lower"})
     higher = compare_arms(runs, "price_sd", "a", bootstrap=200)
     assert lower.loc[0, "arm_wins"] == 0.75 and lower.loc[0, "better"] == "lower"
-    assert higher.loc[0, "arm_wins"] == 0.25 and higher.loc[0, "better"] is None
+    # no better direction: no "better" and no win share (a price level is neither good nor bad)
+    assert np.isnan(higher.loc[0, "arm_wins"]) and higher.loc[0, "better"] is None
     assert metric_directions(["efficiency", "price_sd", "vwap", "no_such"]) == {
         "efficiency": "higher",
         "price_sd": "lower",
