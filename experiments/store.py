@@ -727,11 +727,16 @@ def load(folder) -> Results:
 
 
 def query(folder, sql: str):
-    """Run SQL over a results folder with DuckDB and return a pandas DataFrame.
+    """Run read-only SQL over a results folder with DuckDB and return a pandas DataFrame.
 
     Views: ``runs``, ``timings``, ``failures`` (one file each) and ``rounds``, ``traders``,
-    ``ledger`` (all part files, by glob). Column names holding dots (design parameters such as
+    ``ledger`` (all part files). Column names holding dots (design parameters such as
     ``population.sigma``) must be quoted: ``SELECT "population.sigma", avg(efficiency) ...``.
+
+    The query only reads: every statement must be a ``SELECT``, and DuckDB can open no file
+    of its own (see :mod:`propensim.experiments.readonly_query`). A write (``COPY ... TO``,
+    ``CREATE``, ``EXPORT``), ``ATTACH``, ``INSTALL``, ``LOAD``, ``SET`` or a read of any other
+    file raises a one-line :class:`StoreError`, and nothing is changed.
 
     Examples
     --------
@@ -740,30 +745,6 @@ def query(folder, sql: str):
     """
     path = Path(folder)
     _read_manifest(path) if path.is_dir() else load(path)
-    try:
-        import duckdb
-    except ImportError:
-        raise StoreError("query needs DuckDB: pip install 'propensim[query]'") from None
+    from propensim.experiments.readonly_query import run_readonly
 
-    def lit(p: Path) -> str:
-        return "'" + str(p).replace("'", "''") + "'"
-
-    con = duckdb.connect()
-    try:
-        for name in ("runs", "timings", "failures"):
-            fpath = path / f"{name}.parquet"
-            if fpath.exists():
-                con.execute(f"CREATE VIEW {name} AS SELECT * FROM read_parquet({lit(fpath)})")
-        for name in TABLES:
-            if any((path / name).glob("part-*.parquet")):
-                pattern = path / name / "part-*.parquet"
-                con.execute(
-                    f"CREATE VIEW {name} AS SELECT * FROM "
-                    f"read_parquet({lit(pattern)}, union_by_name = true)"
-                )
-        try:
-            return con.execute(sql).df()
-        except duckdb.Error as exc:
-            raise StoreError(f"query failed: {_one_line(exc)}") from None
-    finally:
-        con.close()
+    return run_readonly(path, sql)
