@@ -1,4 +1,5 @@
-"""Interchangeable rules behind small contracts: clearing, drift, curves, networks, metrics.
+"""Interchangeable rules behind small contracts: clearing, drift, curves, networks, metrics,
+interventions.
 
 Imports only the agents layer. Built-in plugins register through the same entry-point groups as a
 third party's (see :mod:`propensim.plugins.registry`). Names load on first use.
@@ -16,6 +17,7 @@ _NAMES = {
     "Metric": "contracts",
     "NetworkBuilder": "contracts",
     "CurveFamily": "contracts",
+    "Intervention": "contracts",
     "KINDS": "registry",
     "UnknownPluginError": "registry",
     "get_plugin": "registry",

@@ -43,6 +43,13 @@ class ClearingRule(Protocol):
         should be linear in edges and traders: a round at 1e5 traders is meant to take
         milliseconds, so no Python loop over traders.
 
+    Price bounds
+        ``state.price_floor`` and ``state.price_ceiling`` (``-inf`` and ``inf`` unless a price
+        control is in force). A rule that keeps every trade inside them declares the class
+        attribute ``honours_price_bounds = True``; only such rules may be used with a price
+        ceiling or floor, and the market refuses a trade outside the bounds either way.
+        MODEL.md section 9 and docs/policy.md give the meaning for each built-in rule.
+
     A rule may instead (or also) offer the per-agent path: set ``per_agent = True`` and define
     ``agent_trades(agent, state, rng) -> list[tuple[int, int, float, int]]`` returning
     ``(buyer, seller, price, quantity)`` tuples for one trader. The market then calls it for every
@@ -62,11 +69,18 @@ class DriftRule(Protocol):
     """Moves the traders' curves between rounds.
 
     Inputs
-        ``state``: the market state after the round's trades were applied;
+        ``state``: the market state after the round's trades were applied; ``state.elapsed``
+        is the time since the last drift step in rounds (1 in round mode, the time between
+        steps in event mode): a rule that integrates over time steps over ``dt * elapsed``;
         ``outcome``: the round's :class:`RoundOutcome` (who traded, at what price);
         ``rng``: the market's drift stream.
     Output
         ``(mu, sigma)``: new arrays of shape ``(n,)``; ``sigma`` strictly positive and finite.
+    Combining
+        A rule that is a force may also define ``terms(state, outcome) -> (stiffness,
+        offset)`` and ``update_sigma(state, outcome, sigma)``; :func:`~propensim.plugins.drift.
+        combine` sums the forces into one exact Ornstein-Uhlenbeck step, then applies every rule
+        that has only ``apply`` in order. So any rule that passes the kit combines.
     Invariants
         returns new arrays (never edits the population in place); a rule that leaves a column
         alone returns it unchanged; draws only from ``rng``.
@@ -149,4 +163,35 @@ class CurveFamily(Protocol):
 
     def log_value(self, x):
         """Natural log of :meth:`value`, finite far into the tails."""
+        ...
+
+
+@runtime_checkable
+class Intervention(Protocol):
+    """Changes the market from round ``start`` until round ``until`` (a policy or a shock).
+
+    Window
+        ``start``: first round it acts in (default 0); ``until``: the round it stops at
+        (exclusive; None: to the end).
+    Hooks
+        ``begin(market, rng)``: called once at the start of round ``start``, after holdings are
+        restored and before clearing; ``end(market, rng)`` (optional): called at the start of
+        round ``until`` to undo what ``begin`` did; ``validate(market)`` (optional): called
+        before the first round, raises ``ValueError`` naming a parameter that does not fit this
+        market (a missing attribute, a trader id out of range, ``k`` above the traders there
+        are).
+    What it may change
+        Only through the market: ``remove_traders(rows)``, ``restore_traders(rows, network)``,
+        ``replace_network(net)``, ``replace_population(pop, network)``,
+        ``replace_clearing(rule)``, and ``market.policy`` (``floor``, ``ceiling``,
+        ``buyer_tax``, ``seller_tax``). Each of these drops every derived cache.
+    Invariants
+        draws only from ``rng``, its own stream (interventions never move each other's draws or
+        the market's); several due in one round act in spec order.
+    """
+
+    description: ClassVar[str]
+
+    def begin(self, market, rng: np.random.Generator) -> None:
+        """Change the market at round ``start``."""
         ...
