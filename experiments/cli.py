@@ -194,7 +194,7 @@ def _add_calibration_parsers(sub) -> None:
     )
     q.add_argument("--replicates", type=int, default=8, help="runs per candidate (default 8)")
     q.add_argument("--initial", type=int, help="first-design candidates (default 8 x params)")
-    q.add_argument("--max-evals", type=int, default=60, help="refinement candidates (default 60)")
+    q.add_argument("--max-evals", type=int, default=100, help="refinement candidates (default 100)")
     q.add_argument(
         "--target-runs",
         type=_positive_int,

@@ -62,6 +62,10 @@ __all__ = ["TuningResult", "parse_param", "parse_target", "tune_market"]
 
 #: Seed-key prefix of tuning runs (apart from any design point's key of the spec itself).
 TUNE_SPAWN_KEY = 7_000_001
+#: Nelder-Mead stops when its simplex spans less than this share of every range ...
+XATOL = 0.01
+#: ... and its distances differ by less than this (the distance's sampling noise is of order 1).
+FATOL = 0.01
 
 
 def parse_target(text: str) -> tuple[str, float, float | None]:
@@ -252,7 +256,7 @@ def tune_market(
     *,
     replicates: int = 8,
     initial: int | None = None,
-    max_evals: int = 60,
+    max_evals: int = 100,
     target_runs: int = 1,
     out=None,
     workers: int | None = None,
@@ -379,8 +383,8 @@ def tune_market(
             options={
                 "initial_simplex": np.array(simplex),
                 "maxfev": max_evals,
-                "xatol": 1e-3,
-                "fatol": 1e-6,
+                "xatol": XATOL,
+                "fatol": FATOL,
             },
         )
         fit_u = np.clip(res.x, 0.0, 1.0)
