@@ -187,3 +187,22 @@ def test_cli_acceptance(tmp_path, capsys):
     assert (tmp_path / "o" / "parameters.parquet").exists()
     assert main(["acceptance", str(path), "--accepted", "yes"]) == 2
     assert "--accepted 'yes'" in capsys.readouterr().err
+
+
+def test_cli_meetings(tmp_path, capsys):
+    buyers = {"mu": np.array([100.0, 104.0]), "sigma": np.array([3.0, 4.0])}
+    sellers = {"mu": np.array([95.0, 92.0]), "sigma": np.array([3.0, 2.5])}
+    meetings = simulate_meetings(buyers, sellers, rounds=300, price_low=85, price_high=115, seed=1)
+    path = tmp_path / "meetings.parquet"
+    meetings.to_parquet(path)
+    out = tmp_path / "o"
+    assert main(["acceptance", str(path), "--meetings", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    lib = recover_curves(meetings)
+    assert f"{lib.loglik:.4f}" in text
+    stored = pd.read_parquet(out / "curves.parquet")
+    np.testing.assert_array_equal(stored["mu"], lib.table["mu"])
+    bad = tmp_path / "bad.csv"
+    meetings.drop(columns="traded").to_csv(bad, index=False)
+    assert main(["acceptance", str(bad), "--meetings", "--out", str(tmp_path / "b")]) == 2
+    assert "'traded'" in capsys.readouterr().err
