@@ -580,20 +580,33 @@ def gains_losses_figure(groups):
     ax.axvline(0, color="#333333", lw=0.8)
     ax.set_yticks(range(len(labels)), labels)
     ax.set_ylim(len(labels) - 0.5, -0.5)
-    ax.set_xlabel("change in surplus against the baseline (price units x units)")
+    from matplotlib.ticker import MaxNLocator
+
+    ax.xaxis.set_major_locator(MaxNLocator(5))
+    ax.set_xlabel("change in surplus vs baseline (price units x units)")
     ax.set_title("Who gains and who loses")
     return fig
 
 
 @_styled
-def event_sales_figure(events, *, time: str = "time", sales: str = "sales", stock: str = "stock"):
+def event_sales_figure(
+    events,
+    *,
+    time: str = "time",
+    sales: str = "sales",
+    stock: str = "stock",
+    time_label: str | None = None,
+):
     """Sales per time window and stock over time (event mode), mean over runs when several.
 
     Parameters
     ----------
     events : pandas.DataFrame
         Columns ``time`` (e.g. weeks), ``sales`` (units per window), optional ``stock`` (units)
-        and ``run_id`` (several runs are averaged, with a 95% interval of the mean).
+        and ``run_id`` (several runs are averaged, with a 95% interval of the mean); other
+        column names through ``time``, ``sales`` and ``stock``.
+    time_label : str, optional
+        The x axis label (default ``"<time> (time units)"``).
     """
     fig = _figure(6.4, 3.4)
     ax = _subplots(fig)[0][0]
@@ -607,7 +620,7 @@ def event_sales_figure(events, *, time: str = "time", sales: str = "sales", stoc
         else:
             x, mean = events[time].to_numpy(float), events[col].to_numpy(float)
         ax.plot(x, mean, color=f"C{i}", lw=1.2, label=f"{col} (units)")
-    ax.set_xlabel(f"{time} (time units)")
+    ax.set_xlabel(time_label or f"{time} (time units)")
     ax.set_ylabel("units")
     ax.legend(loc="best")
     ax.set_title("Sales and stock over time")

@@ -129,6 +129,7 @@ def _gather(folder: Path) -> _Page:
         settings=settings_from_manifest(manifest, runs),
     )
     page.rounds = results.rounds
+    page.results = results
     _what_is_missing(page, results)
     return page
 
@@ -446,6 +447,24 @@ def _group_surplus(page: _Page):
     stored = page.folder / "groups.parquet"
     if stored.exists():
         return pd.read_parquet(stored)
+    totals = getattr(page.results, "totals", None)  # per-trader surplus, when collected
+    if totals is not None and len(totals):
+        try:
+            from propensim.experiments.gains import compare_groups
+
+            table = compare_groups(
+                page.runs,
+                totals,
+                page.settings["baseline"],
+                confidence=page.settings["confidence"],
+                bootstrap=1000,
+            )
+            if (table["grouping"] == "role").any():  # by role: one bar per side and arm
+                table = table[table["grouping"] == "role"]
+            label = table["grouping"].astype(str) + ": " + table["group"].astype(str)
+            return table.assign(group=label)[["group", "arm", "mean_diff", "ci_low", "ci_high"]]
+        except Exception as exc:  # that module's table may change; fall back to the metrics
+            page.notes.append(f"Per-group surplus not compared: {type(exc).__name__}: {exc}")
     metrics = [
         m for m in page.comparison["metric"].unique() if any(h in m for h in GROUP_SURPLUS_HINTS)
     ]
@@ -485,6 +504,19 @@ def _optional_tables(page: _Page, F) -> None:
             return pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
         return None
 
+    rounds = getattr(page, "rounds", None)
+    if rounds is not None and {"sold", "on_hand"} <= set(rounds.columns):  # shop mode's weeks
+        weeks = rounds[["run_id", "round", "sold", "on_hand"]]
+        _add(
+            page,
+            "shop",
+            "Weekly sales and stock",
+            "Units sold per week and stock on hand at the end of the week, mean over runs "
+            "with a 95% Student-t interval.",
+            lambda: F.event_sales_figure(
+                weeks, time="round", sales="sold", stock="on_hand", time_label="week"
+            ),
+        )
     events = read("events")
     if events is not None and {"time", "sales"} <= set(events.columns):
         _add(
