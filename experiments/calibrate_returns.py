@@ -116,7 +116,7 @@ def load_series(data, column: str, *, returns: bool = False) -> tuple[np.ndarray
         i = int(np.flatnonzero(bad)[0])
         raise CalibrationError(
             f"--column {column!r}: missing or non-numeric {what} in data row {i + 1} "
-            f"({raw.iloc[i]!r}; {int(bad.sum())} such rows)"
+            f"({str(raw.iloc[i])!r}; {int(bad.sum())} such rows)"
         )
     info["rows"] = int(values.size)
     if returns:
@@ -126,7 +126,7 @@ def load_series(data, column: str, *, returns: bool = False) -> tuple[np.ndarray
         if nonpos.any():
             i = int(np.flatnonzero(nonpos)[0])
             raise CalibrationError(
-                f"--column {column!r}: non-positive price {values[i]!r} in data row {i + 1} "
+                f"--column {column!r}: non-positive price {values[i]:g} in data row {i + 1} "
                 f"({int(nonpos.sum())} such rows); log returns need prices > 0"
             )
         r = np.diff(np.log(values))
@@ -739,6 +739,7 @@ def _fit_one(model: _Model, z, m, s0, rng, n_starts, max_iter) -> ModelFit:
     cov_theta[np.ix_(keep, keep)] = sub
     se = np.sqrt(np.clip(np.diag(jac @ cov_theta @ jac.T), 0.0, None))
     se[[names.index(k) for k in edge_names]] = np.nan
+    se[se == 0.0] = np.nan  # fixed by the edge parameters alone (w0 when the rest are at 0)
     ll_raw = ll - n * math.log(s0)  # back to the data's units: density scales by 1/s0
     p = model.n_theta
     cdf = model.cdf(dict(zip(names, values, strict=True)))

@@ -645,8 +645,12 @@ def cmd_calibrate(args) -> int:
     print(fit.format())
     bad = [f for f in fit.fits if not f.converged]
     if bad:
-        for f in bad:
-            print(f"propensim: error: {f.model} did not converge ({f.message})", file=sys.stderr)
+        names = ", ".join(f.model for f in bad)
+        print(
+            f"propensim: error: {len(bad)} fit(s) did not converge: {names} "
+            f"(first: {bad[0].message}); try more --starts or --max-iter",
+            file=sys.stderr,
+        )
         return 1
     return 0
 
