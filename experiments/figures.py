@@ -628,24 +628,35 @@ def event_sales_figure(
 
 
 @_styled
-def calibration_figure(fits, *, x: str = "x", observed: str = "observed"):
+def calibration_figure(
+    fits, *, x: str = "x", observed: str = "observed", sample=None, x_label: str | None = None
+):
     """An observed distribution against fitted model densities.
 
     Parameters
     ----------
     fits : pandas.DataFrame
-        Column ``x`` (e.g. return, in its units), ``observed`` (empirical density at ``x``) and one
-        column per fitted model (its density at ``x``).
+        Column ``x`` (e.g. return, in its units), optionally ``observed`` (empirical density at
+        ``x``), and one column per fitted model (its density at ``x``).
+    sample : array-like, optional
+        The observations themselves: drawn as a density histogram (instead of ``observed``).
+    x_label : str, optional
+        The x axis label (default ``"<x> (data units)"``).
     """
-    fig = _figure(6.0, 3.4)
+    fig = _figure(6.4, 3.6)
     ax = _subplots(fig)[0][0]
     xs = fits[x].to_numpy(dtype=float)
-    if observed in fits.columns:
+    if sample is not None:
+        data = np.asarray(sample, dtype=float)
+        data = data[np.isfinite(data)]
+        bins = int(np.clip(np.sqrt(data.size), 10, 60))
+        ax.hist(data, bins=bins, density=True, color="#cccccc", label=f"observed (n={data.size})")
+    elif observed in fits.columns:
         width = float(np.median(np.diff(xs))) if xs.size > 1 else 1.0
         ax.bar(xs, fits[observed].to_numpy(float), width=width, color="#cccccc", label="observed")
     for i, col in enumerate(c for c in fits.columns if c not in (x, observed)):
         ax.plot(xs, fits[col].to_numpy(float), color=f"C{i}", lw=1.3, label=col)
-    ax.set_xlabel(f"{x} (data units)")
+    ax.set_xlabel(x_label or f"{x} (data units)")
     ax.set_ylabel("density (1 / data units)")
     ax.legend(loc="best")
     ax.set_title("Calibration: observed against fitted densities")

@@ -841,8 +841,128 @@ font-size:.8em}.more{font-size:.8em;color:#666}nav a{margin-right:.8em}
 
 def render_report(folder) -> str:
     """The report of a results folder as HTML text (see :func:`write_report`)."""
-    html_text, _ = _render(Path(folder))
+    folder = Path(folder)
+    if _folder_format(folder) == CALIBRATION_FORMAT:
+        return _render_calibration(folder, None)[0]
+    html_text, _ = _render(folder)
     return html_text
+
+
+CALIBRATION_FORMAT = "propensim-calibration"
+
+
+def _folder_format(folder: Path) -> str | None:
+    try:
+        return json.loads((folder / "manifest.json").read_text()).get("format")
+    except (OSError, ValueError, AttributeError):
+        return None  # load() names the problem
+
+
+def _head(title: str) -> list[str]:
+    return [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta http-equiv="Content-Security-Policy" content="default-src \'none\'; '
+        "img-src data:; style-src 'unsafe-inline'\">",
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{_e(title)}: propensim report</title><style>{_CSS}</style></head><body>",
+    ]
+
+
+def _render_calibration(folder: Path, figures_dir: Path | None) -> tuple[str, _Page]:
+    """The report of a calibration folder (``propensim calibrate``): fits, densities, cautions."""
+    import pandas as pd
+
+    from propensim.experiments import figures as F
+
+    _require_matplotlib()
+    manifest = json.loads((folder / "manifest.json").read_text())
+
+    def table(name: str):
+        path = folder / f"{name}.parquet"
+        return pd.read_parquet(path) if path.exists() else None
+
+    fits, params, density, returns = (
+        table(n) for n in ("fits", "parameters", "density", "returns")
+    )
+    page = _Page(
+        folder=folder,
+        manifest=manifest,
+        spec={},
+        runs=None,
+        ok=None,
+        metrics=[],
+        parameters=[],
+        arms=[],
+        settings={},
+    )
+    missing = [f"{n}.parquet" for n, t in (("fits", fits), ("density", density)) if t is None]
+    if density is not None and {"model", "x", "density"} <= set(density.columns):
+        wide = density.pivot_table(index="x", columns="model", values="density", sort=True)
+        wide = wide.reset_index()
+        sample = returns["r"] if returns is not None and "r" in returns.columns else None
+        label = "log return" if manifest.get("kind") == "returns" else "x (data units)"
+        _add(
+            page,
+            "calibration",
+            "Fitted densities against the data",
+            "The observations as a density histogram and each fitted model's density.",
+            lambda: F.calibration_figure(wide, sample=sample, x_label=label),
+        )
+    title = f"calibration: {Path(str(manifest.get('source', folder.name))).name}"
+    rows = [
+        (k, manifest.get(k))
+        for k in (
+            "kind",
+            "source",
+            "n",
+            "options",
+            "best_aic",
+            "best_bic",
+            "verdict",
+            "converged",
+            "written",
+            "versions",
+            "platform",
+            "command",
+        )
+        if k in manifest
+    ]
+    parts = _head(title) + [
+        f"<h1>{_e(title)}</h1>",
+        '<p class="caution"><b>Caution.</b> ' + _e(CAUTIONS[0]) + " The fits assume what the "
+        "calibration states (below); a better likelihood is not evidence that a model is "
+        "true.</p>",
+        "<h2>What was fitted</h2><table class='kv'>"
+        + "".join(
+            f"<tr><th>{_e(k)}</th><td>{_e(v if isinstance(v, str) else json.dumps(v))}</td></tr>"
+            for k, v in rows
+        )
+        + "</table>",
+        "<h2>What is missing</h2>",
+        ("<p class='missing'>Not in the folder: " + _e(", ".join(missing)) + "</p>")
+        if missing
+        else "<p>Nothing: every table of the calibration is there.</p>",
+    ]
+    if fits is not None:
+        parts += ["<h2>Fits</h2>", _table(fits)]
+    if params is not None:
+        parts += ["<h3>Parameters</h3>", _table(params)]
+    parts.append("<h2>Figures</h2>")
+    parts += [_svg_img(f) for f in page.figures]
+    if page.notes:
+        parts.append("<ul>" + "".join(f"<li>{_e(n)}</li>" for n in page.notes) + "</ul>")
+    parts.append(
+        "<h2>Cautions</h2><ul>"
+        + "".join(f"<li>{_e(c)}</li>" for c in CAUTIONS[:2])
+        + "</ul></body></html>\n"
+    )
+    if figures_dir is not None:
+        figures_dir.mkdir(parents=True, exist_ok=True)
+        for f in page.figures:
+            F.save(f.fig, figures_dir / f.key)
+    page.missing = missing
+    return "\n".join(parts), page
 
 
 def _render(folder: Path, figures_dir: Path | None = None) -> tuple[str, _Page]:
@@ -1056,7 +1176,11 @@ def write_report(folder, out=None, *, figures_dir=None) -> ReportResult:
 
     folder = Path(folder)
     target = Path(out) if out is not None else folder / "report.html"
-    text, page = _render(folder, Path(figures_dir) if figures_dir is not None else None)
+    figures = Path(figures_dir) if figures_dir is not None else None
+    if _folder_format(folder) == CALIBRATION_FORMAT:
+        text, page = _render_calibration(folder, figures)
+    else:
+        text, page = _render(folder, figures)
     prefix = "" if target.stem == "report" else f"{target.stem}-"
     target.parent.mkdir(parents=True, exist_ok=True)
     tables = []

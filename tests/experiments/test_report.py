@@ -262,3 +262,41 @@ def test_demo_ends_by_writing_its_report(tmp_path):
     assert f"report: {report}" in res.stdout
     size = report.stat().st_size
     assert 50_000 < size < 1_000_000  # the limit for the demo
+
+
+def test_calibration_folder_gets_a_report_with_the_fitted_densities(tmp_path):
+    # the layout propensim calibrate writes: manifest.json and one Parquet file per table
+    folder = tmp_path / "cal"
+    folder.mkdir()
+    manifest = {
+        "format": "propensim-calibration",
+        "format_version": 1,
+        "kind": "returns",
+        "source": "prices.csv",
+        "n": 200,
+        "best_aic": "normal",
+    }
+    (folder / "manifest.json").write_text(json.dumps(manifest))
+    x = np.linspace(-4, 4, 81)
+    density = pd.DataFrame(
+        {
+            "model": np.repeat(["normal", "wide"], x.size),
+            "x": np.tile(x, 2),
+            "density": np.r_[np.exp(-(x**2) / 2), 0.5 * np.exp(-(x**2) / 8)] / np.sqrt(2 * np.pi),
+            "cdf": 0.0,
+        }
+    )
+    density.to_parquet(folder / "density.parquet")
+    pd.DataFrame({"model": ["normal", "wide"], "aic": [10.0, 30.0]}).to_parquet(
+        folder / "fits.parquet"
+    )
+    rng = np.random.default_rng(0)
+    pd.DataFrame({"t": range(200), "r": rng.normal(size=200)}).to_parquet(
+        folder / "returns.parquet"
+    )
+    result = write_report(folder)
+    text = result.path.read_text()
+    assert result.figures == ["calibration"]
+    assert "Fitted densities against the data" in text and "not investment" in text
+    assert "<td>prices.csv</td>" in text
+    assert text == write_report(folder).path.read_text()  # the same bytes again
