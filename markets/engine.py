@@ -380,12 +380,13 @@ def _resolve_metrics(metrics) -> list[tuple[str, Any]]:
 
 
 def _equilibrium_price(pop: Population) -> float:
-    from propensim.plugins.metrics import competitive_equilibrium
+    from propensim.plugins.welfare import crossing
 
+    # From counts (a weighted crossing): the same price as competitive_equilibrium on the
+    # unit-expanded arrays, in memory and time that do not grow with units per trader.
     b, s = pop.role == BUYER, pop.role == SELLER
-    values = np.repeat(pop.value[b], pop.capacity[b])
-    costs = np.repeat(pop.value[s], np.minimum(pop.capacity[s], pop.stock[s]))
-    q, lo, hi = competitive_equilibrium(values, costs)
+    units_s = np.minimum(pop.capacity[s], pop.stock[s])
+    q, lo, hi = crossing(pop.value[b], pop.capacity[b], pop.value[s], units_s)
     return float("nan") if q == 0 else 0.5 * (lo + hi)
 
 

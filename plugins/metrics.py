@@ -56,7 +56,7 @@ _NAN = float("nan")
 def max_surplus(
     values,
     costs,
-    edges: tuple[np.ndarray, np.ndarray] | None = None,
+    edges=None,
     *,
     units_b=None,
     units_s=None,
@@ -70,13 +70,15 @@ def max_surplus(
         Buyers' values per unit (price units).
     costs : array-like, shape (n_s,)
         Sellers' costs per unit (price units).
-    edges : (ndarray, ndarray), optional
-        ``(buyer_idx, seller_idx)`` indices into ``values`` and ``costs`` of the pairs that may
-        trade. ``None``: every buyer may trade with every seller.
+    edges : tuple of two arrays, list of pairs or array of shape (m, 2), optional
+        The pairs that may trade, as indices into ``values`` and ``costs``: a ``tuple``
+        ``(buyer_idx, seller_idx)`` of two 1-D arrays, or a ``list`` of ``(buyer, seller)`` pairs
+        (or an (m, 2) array), one edge per row. The container decides, never the sizes; other
+        forms raise ``ValueError``. ``None``: every buyer may trade with every seller.
     units_b, units_s : array-like of int, optional
         Units each buyer may buy and each seller may sell (default 1 each; 0 excludes a trader).
         Multi-unit traders are expanded into unit traders.
-    method : {"auto", "dense", "sparse"}
+    method : {"auto", "dense", "sparse", "lp"}
         Solver for a restricted market (see Notes).
 
     Returns
@@ -99,7 +101,11 @@ def max_surplus(
     exists, and calls ``scipy.sparse.csgraph.min_weight_full_bipartite_matching(maximize=True)``
     (LAPJVsp; memory linear in edges; about 2 s for 2e4 buyers and 1e5 edges here). The dense
     path is exact; the sparse one is exact up to ``n_units * 2**-40 max w`` (below float noise
-    for realistic sizes). Multi-unit expansion multiplies an edge into ``u_i u_j`` unit edges.
+    for realistic sizes). Multi-unit expansion multiplies an edge into ``u_i u_j`` unit edges;
+    above 1e6 units (complete) or unit edges (restricted) nothing is expanded: the complete
+    market is summed from counts (weighted crossing of the sorted steps) and the restricted one
+    solved as a transportation problem (``"lp"``: HiGHS; integral because a bipartite incidence
+    matrix is totally unimodular), so memory grows with traders and edges, not units.
 
     References
     ----------
@@ -113,6 +119,8 @@ def max_surplus(
     6.0
     >>> max_surplus([10, 8], [5, 7], edges=([1], [0]))
     3.0
+    >>> max_surplus([10, 8], [5, 7], edges=[(0, 0), (1, 1)])
+    6.0
     """
     return welfare.max_surplus(
         values, costs, edges, units_b=units_b, units_s=units_s, method=method
