@@ -729,11 +729,13 @@ class _Builder:
             )
         if mode not in m:
             raise self.error((mode,), f"section [{mode}] is required with market.mode = {mode!r}")
-        if m.get("interventions") or any(a.get("interventions") for a in m["arms"]):
-            raise self.error(
-                ("interventions",), f"are not available with market.mode = {mode!r} yet"
-            )
-        exp["rounds"] = 1  # not written out: runs take their length from _timed_rounds
+        if mode == "shop" and (
+            m.get("interventions") or any(a.get("interventions") for a in m["arms"])
+        ):
+            raise self.error(("interventions",), "are not available with market.mode = 'shop'")
+        # Not written out: runs take their length from _timed_rounds. Interventions act at the
+        # start of a window, so their start and until count windows of the base configuration.
+        exp["rounds"] = _timed_rounds({0: {mode: {"window": m[mode].get("horizon"), **m[mode]}}})
         self._timed = mode
 
     def _compare(self, m: dict, arms: list, collect: dict) -> dict[str, Any] | None:

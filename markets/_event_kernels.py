@@ -188,6 +188,8 @@ def run_market(
     stock,
     cash,
     with_cash,
+    buyer_tax,
+    seller_tax,
     t0,
     t_end,
     cap,
@@ -204,11 +206,13 @@ def run_market(
 
     Each event: ``tau ~ Exp(a0)`` (one standard exponential over the total), a channel with
     probability ``rate / a0`` (one uniform), a price ``mean + sd * z`` (one standard normal).
-    A buyer who cannot pay the price refuses (``counters[0] += 1``; nothing changes). Otherwise
-    one unit moves seller -> buyer and the price buyer -> seller, the trade is written to
-    ``out_*``, and the channels that touch the two traders are updated: a seller out of stock
-    takes all its channels out of the sum, as does a buyer out of cash. Rates depend on the
-    curves only otherwise, which do not change between drift steps, so no other channel moves.
+    A buyer who cannot pay the price (plus ``buyer_tax``) refuses (``counters[0] += 1``; nothing
+    changes). Otherwise one unit moves seller -> buyer, the buyer pays ``price + buyer_tax`` and
+    the seller receives ``price - seller_tax`` (per-unit taxes; negative for subsidies), the
+    trade is written to ``out_*``, and the channels that touch the two traders are updated: a
+    seller out of stock takes all its channels out of the sum, as does a buyer out of cash.
+    Rates depend on the curves only otherwise, which do not change between drift steps, so no
+    other channel moves.
 
     ``with_cash`` False leaves ``cash`` alone (prices drawn later by the caller).
 
@@ -231,14 +235,15 @@ def run_market(
         b = np.int64(chan[e, 2])
         s = np.int64(chan[e, 3])
         price = chan[e, 0] + chan[e, 1] * rng.standard_normal()
-        if with_cash and price > cash[b]:
+        pays = price + buyer_tax
+        if with_cash and pays > cash[b]:
             counters[0] += 1
             continue
         stock[s] -= 1
         stock[b] += 1
         if with_cash:
-            cash[b] -= price
-            cash[s] += price
+            cash[b] -= pays
+            cash[s] += price - seller_tax
         out_time[k] = t
         out_edge[k] = e
         out_price[k] = price

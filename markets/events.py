@@ -62,7 +62,7 @@ from contextlib import contextmanager
 import numpy as np
 
 from propensim.agents.population import SELLER, Population, build_population
-from propensim.markets.build import build_drift, spawn_streams
+from propensim.markets.build import build_drift, build_interventions, spawn_streams
 from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
@@ -183,8 +183,12 @@ class EventMarket:
         max_events: int = 10_000_000,
         keep_ledger: bool = True,
         traders_every: int = 0,
+        keep_totals: bool = False,
+        interventions: Sequence = (),
     ) -> None:
+        from propensim.markets.build import intervention_streams
         from propensim.markets.engine import _equilibrium_price, _resolve_metrics
+        from propensim.markets.schedule import PricePolicy, Schedule
 
         streams = spawn_streams(seed)
         if not isinstance(network, TradingNetwork):
@@ -231,12 +235,30 @@ class EventMarket:
         self._rows: list[dict[str, float]] = []
         self._ledger: list[tuple[int, np.ndarray, Trades]] = []
         self._snapshots: list[dict[str, np.ndarray]] = []
+        self.keep_totals = bool(keep_totals)
+        self._surplus = np.zeros(len(population))  # shape: (n,) each trader's surplus so far
+        self._units = np.zeros(len(population), dtype=np.int64)
         self.state = MarketState(
             population=population,
             network=network,
             round=0,
             equilibrium_price=_equilibrium_price(population),
         )
+        self.clearing = None  # the channels are the clearing rule
+        self.policy = PricePolicy()
+        self.treasury = 0.0
+        self.present = np.ones(len(population), dtype=bool)
+        self.initial_degree = network.degree.copy()
+        interventions = list(interventions)
+        self.schedule = Schedule(interventions, intervention_streams(seed, len(interventions)))
+        for i, item in enumerate(interventions):
+            name = getattr(item, "plugin_name", type(item).__name__)
+            if type(item).__name__ in _NOT_IN_EVENTS:
+                raise ValueError(
+                    f"interventions[{i}] ({name}): not available in event mode; allowed: "
+                    "interventions that change traders, the network, values or per-unit taxes"
+                )
+        self.schedule.validate(self)
         self._check_memory()
         self._setup_channels()
 
@@ -266,6 +288,62 @@ class EventMarket:
                 f"{self.network.n_edges} channels need about {need / 2**30:.2f} GiB but about "
                 f"{have / 2**30:.2f} GiB is available; use a sparser network or fewer traders"
             )
+
+    # -- the one place that changes the market (interventions call these) ------------------
+    def replace_network(self, network: TradingNetwork) -> None:
+        """Put a new network in place (same traders); every channel is rebuilt from it."""
+        if network.n != len(self.population):
+            raise ValueError(
+                f"network has {network.n} traders but population has {len(self.population)}"
+            )
+        self.network = network
+        self.state.network = network
+        self.state.cache.clear()
+        self._setup_channels()
+
+    def replace_population(self, population: Population, network: TradingNetwork | None = None):
+        """Put a new population in place (rows kept in order, new rows appended) and rebuild.
+
+        New rows get the mean of the per-trader meeting rates when rates are per trader.
+        """
+        from propensim.markets.engine import _equilibrium_price
+
+        old_n, n = len(self.population), len(population)
+        network = self.network if network is None else network
+        if network.n != n:
+            raise ValueError(f"network has {network.n} traders but population has {n}")
+        if n < old_n or np.any(population.role[:old_n] != self.population.role):
+            raise ValueError("a population may only grow, keeping every existing trader's role")
+        if not isinstance(self._lam_trader, float) and n > old_n:
+            extra = np.full(n - old_n, float(self._lam_trader.mean()))
+            self._lam_trader = np.concatenate([self._lam_trader, extra])
+        grow = n - old_n
+        self.present = np.concatenate([self.present, np.ones(grow, dtype=bool)])
+        self.initial_degree = np.concatenate([self.initial_degree, np.zeros(grow, np.int64)])
+        self._surplus = np.concatenate([self._surplus, np.zeros(grow)])
+        self._units = np.concatenate([self._units, np.zeros(grow, np.int64)])
+        self.population = population
+        self.network = network
+        self._is_seller = population.role == SELLER
+        self.state.population = population
+        self.state.network = network
+        self.state.cache.clear()
+        self.state.equilibrium_price = _equilibrium_price(population)
+        self._setup_channels()
+
+    def remove_traders(self, rows) -> None:
+        """Take traders out: they lose every channel (their rows stay)."""
+        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
+        gone = np.zeros(len(self.population), dtype=bool)
+        gone[rows] = True
+        self.present &= ~gone
+        net = self.network
+        self.replace_network(net.keep_edges(~(gone[net.buyer] | gone[net.seller])))
+
+    def restore_traders(self, rows, network: TradingNetwork) -> None:
+        """Bring traders back with the network they return to."""
+        self.present[np.asarray(rows, dtype=np.int64)] = True
+        self.replace_network(network)
 
     def _setup_channels(self) -> None:
         net, k = self.network, _kernels()
@@ -369,6 +447,10 @@ class EventMarket:
         if w + 1 >= self.n_windows:
             end = self.horizon
         self.state.round = w
+        if len(self.schedule) and self.schedule.act(self, w):  # interventions due at this window
+            if math.isfinite(self.policy.floor) or math.isfinite(self.policy.ceiling):
+                raise ValueError("price bounds are not available in event mode")
+            self._rebuild()  # values, holdings or curves may have changed
         parts: list[Trades] = []
         times: list[np.ndarray] = []
         while self.stop_reason is None:
@@ -382,7 +464,13 @@ class EventMarket:
                 break
             self._drift_step()  # an inner drift step (drift_every < window)
         window_trades = Trades.concat(parts)
-        outcome = RoundOutcome.from_trades(window_trades, len(self.population))
+        outcome = _outcome(parts, window_trades, len(self.population))
+        if self.keep_totals and len(window_trades):
+            pop, t = self.population, window_trades
+            np.add.at(self._surplus, t.buyer, pop.value[t.buyer] - outcome.buyer_pays)
+            np.add.at(self._surplus, t.seller, outcome.seller_gets - pop.value[t.seller])
+            np.add.at(self._units, t.buyer, 1)
+            np.add.at(self._units, t.seller, 1)
         self._drift_step()  # the window's end is always a drift step
         row: dict[str, float] = {"round": w, "time": self.time}
         for name, metric in self.metrics:
@@ -429,6 +517,7 @@ class EventMarket:
                 self._chan,
                 self._buyer_ptr, self._seller_ptr, self._seller_edges,
                 self._stock, self._cash, self._with_cash,
+                float(self.policy.buyer_tax), float(self.policy.seller_tax),
                 float(self.time), float(stop), int(cap), self._rng,
                 out_time, out_edge, out_price, self._counters,
             )  # fmt: skip
@@ -471,7 +560,14 @@ class EventMarket:
         trades = Trades(b, s, price.copy(), np.ones(edge.shape[0], dtype=np.int64), edge.copy())
         self.state.remaining = np.where(self._is_seller, pop.stock, _NO_LIMIT)
         check_trades(self.state, trades)
-        settle_trades(pop, trades)
+        bt, st = float(self.policy.buyer_tax), float(self.policy.seller_tax)
+        if bt or st:  # a per-unit tax (subsidy): the wedge goes to (comes from) the treasury
+            pays, gets = trades.price + bt, trades.price - st
+            trades.buyer_pays, trades.seller_gets = pays, gets
+            settle_trades(pop, trades, pays, gets)
+            self.treasury += (bt + st) * len(trades)
+        else:
+            settle_trades(pop, trades)
         if not np.array_equal(pop.stock, self._stock) or (
             self._with_cash and not np.array_equal(pop.cash, self._cash)
         ):
@@ -488,7 +584,7 @@ class EventMarket:
         if self.drift is None or elapsed <= 0:
             return
         pop, state = self.population, self.state
-        outcome = RoundOutcome.from_trades(Trades.concat(parts), len(pop))
+        outcome = _outcome(parts, Trades.concat(parts), len(pop))
         with _elapsed(state, elapsed):
             mu, sigma = self.drift.apply(state, outcome, self._rng_drift)
         pop.mu[:] = mu
@@ -549,6 +645,26 @@ class EventMarket:
 
         return pd.DataFrame(self.traders_columns())
 
+    def totals_columns(self) -> dict[str, np.ndarray]:
+        """Each trader's surplus and units over the run, with the columns that group traders."""
+        from propensim.agents.population import ROLE_NAMES
+        from propensim.markets.engine import _quartiles
+
+        pop = self.population
+        n = len(pop)
+        out = {
+            "trader": np.arange(n, dtype=np.int64),
+            "role": np.array(ROLE_NAMES, dtype=object)[pop.role].astype(str),
+            "degree_quartile": _quartiles(self.initial_degree),
+            "left": (~self.present).astype(np.int64),
+        }
+        for key, values in self.network.attributes.items():
+            if values.shape == (n,):
+                out[key] = values
+        out["surplus"] = self._surplus.copy()
+        out["units"] = self._units.copy()
+        return out
+
     def summary(self) -> dict[str, float]:
         """One number per metric over the windows run so far, by each metric's ``aggregate``."""
         from propensim.markets.recorder import aggregate
@@ -558,6 +674,19 @@ class EventMarket:
             vals = np.array([row[name] for row in self._rows], dtype=float)
             out[name] = aggregate(vals, getattr(metric, "aggregate", "mean"))
         return out
+
+
+#: Interventions that need the round's clearing rule (price bounds, another rule).
+_NOT_IN_EVENTS = ("PriceCeiling", "PriceFloor", "SwitchClearing")
+
+
+def _outcome(parts: list[Trades], trades: Trades, n: int) -> RoundOutcome:
+    """The outcome of ``trades`` (the concatenation of ``parts``), taxes included."""
+    if not any(hasattr(p, "buyer_pays") for p in parts):
+        return RoundOutcome.from_trades(trades, n)
+    pays = np.concatenate([getattr(p, "buyer_pays", p.price) for p in parts])
+    gets = np.concatenate([getattr(p, "seller_gets", p.price) for p in parts])
+    return RoundOutcome.from_trades(trades, n, pays, gets, float((pays - gets).sum()))
 
 
 @contextmanager
@@ -637,6 +766,8 @@ def build_event_market(config: Mapping, seed=None) -> EventMarket:
         max_events=ev["max_events"],
         keep_ledger=bool(options.get("keep_ledger", True)),
         traders_every=int(options.get("traders_every", 0) or 0),
+        keep_totals=bool(options.get("keep_totals", False)),
+        interventions=build_interventions(config.get("interventions")),
     )
 
 

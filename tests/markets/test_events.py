@@ -320,3 +320,53 @@ def test_bad_event_specs_give_one_line_naming_the_field(path, value, needle):
     with pytest.raises(SpecError) as info:
         load_spec(raw)
     assert needle in str(info.value) and "\n" not in str(info.value)
+
+
+# -- interventions at a time (the start of a window) ---------------------------------------------
+def test_interventions_act_at_window_starts_and_money_is_conserved_with_the_treasury():
+    # A per-unit tax drives a wedge t between what buyers pay and sellers get; revenue is
+    # t x quantity (any principles-of-economics text, tax-incidence chapter); money is conserved
+    # among buyers, sellers and the treasury.
+    cfg = {
+        "population": {"n_buyers": 20, "n_sellers": 20, "stock": 40, "shade": 5.0, "cash": 1e4},
+        "network": {"name": "erdos_renyi", "mean_degree": 6},
+        "metrics": ["volume", "tax_revenue", "buyer_price", "seller_price"],
+        "events": {"rate": 0.5, "horizon": 10.0, "window": 1.0},
+        "market": {"keep_totals": True},
+        "interventions": [
+            {"name": "unit_tax", "amount": 2.0, "start": 3, "until": 6},
+            {"name": "remove_hubs", "k": 4, "start": 5},
+        ],
+    }
+    m = build_event_market(cfg, seed=1)
+    cash0, edges0 = m.population.cash.sum(), m.network.n_edges
+    rounds = m.run()
+    taxed = rounds["round"].between(3, 5)
+    np.testing.assert_allclose(rounds["tax_revenue"][taxed], 2.0 * rounds["volume"][taxed])
+    assert (rounds["tax_revenue"][~taxed] == 0).all()
+    np.testing.assert_allclose(
+        (rounds["buyer_price"] - rounds["seller_price"])[taxed & (rounds["volume"] > 0)], 2.0
+    )
+    assert m.treasury == pytest.approx(rounds["tax_revenue"].sum())
+    assert m.population.cash.sum() + m.treasury == pytest.approx(cash0, rel=1e-12)
+    led = m.ledger_columns()
+    hubs = np.flatnonzero(~m.present)
+    assert hubs.size == 4 and m.network.n_edges < edges0
+    late = led["time"] > 5.0
+    assert not np.isin(led["buyer"][late], hubs).any()
+    assert not np.isin(led["seller"][late], hubs).any()
+    totals = m.totals_columns()
+    assert totals["units"].sum() == 2 * led["buyer"].size and totals["left"].sum() == 4
+    with pytest.raises(ValueError, match=r"interventions\[0\] \(price_ceiling\): not available"):
+        build_event_market({**cfg, "interventions": [{"name": "price_ceiling"}]}, seed=1)
+
+
+def test_event_specs_check_intervention_windows():
+    from propensim.experiments.spec import SpecError, load_spec
+
+    raw = {k: dict(v) for k, v in SPEC.items()}
+    raw["interventions"] = [{"name": "unit_tax", "amount": 1.0, "start": 1}]
+    assert load_spec(raw).config()["interventions"][0]["start"] == 1
+    raw["interventions"] = [{"name": "unit_tax", "amount": 1.0, "start": 3}]
+    with pytest.raises(SpecError, match="interventions.0.start|interventions\\[0\\].start"):
+        load_spec(raw)
