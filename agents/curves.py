@@ -304,6 +304,13 @@ class NormalCurve(Curve):
     role: Any = None
 
     description: ClassVar[str] = "normal curve a*exp(-(x-mu)^2/(2 sigma^2)) (the default family)"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A trader is its propensity curve: the probability of accepting a trade at each "
+            "price, here a normal bell centred on the preferred price with the price "
+            "uncertainty as its width."
+        ),
+    }
 
     def __post_init__(self) -> None:
         mu = as_float_array("mu", self.mu)
@@ -385,6 +392,13 @@ class OscillatorCurve(Curve):
     role: Any = None
 
     description: ClassVar[str] = "mixture of harmonic-oscillator levels sum w_n |psi_n|^2, height a"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "Propensity curves as mixtures of harmonic-oscillator levels: the ground level is "
+            "the normal curve, excited levels give heavier tails and several preferred "
+            "prices."
+        ),
+    }
     _trailing: ClassVar[tuple[str, ...]] = ("weights",)
 
     def __post_init__(self) -> None:
@@ -660,6 +674,12 @@ class LogisticCurve(Curve):
     description: ClassVar[str] = (
         "one-sided logistic step; tau -> 0 is a classical reservation price"
     )
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A one-sided propensity curve: a buyer accepts low prices, a seller high ones, "
+            "with a logistic fall-off of width tau."
+        ),
+    }
 
     def __post_init__(self) -> None:
         mu = as_float_array("mu", self.mu)
@@ -743,6 +763,12 @@ class TabulatedCurve(Curve):
     role: Any = None
 
     description: ClassVar[str] = "values on a price grid, linearly interpolated, zero outside"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A propensity curve given as values on a price grid (input data), linearly "
+            "interpolated."
+        ),
+    }
     _trailing: ClassVar[tuple[str, ...]] = ("grid", "values")
 
     def __post_init__(self) -> None:

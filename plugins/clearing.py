@@ -114,6 +114,24 @@ class PropensityMatching:
     description: ClassVar[str] = (
         "propensity matching: meetings trade with chance = joint curve peak, price drawn from it"
     )
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "Trade is a stochastic event: a buyer-seller meeting trades with probability "
+            "equal to the peak of the product of the two propensity curves, at a price drawn "
+            "from that product (no assumed clearing price)."
+        ),
+        "interaction": (
+            "Each buyer with units left meets a number of sellers drawn at random from its "
+            "trading partners on the network, every round."
+        ),
+        "stochasticity": (
+            "Who meets whom, whether a meeting trades, the price, and the order in which "
+            "agreements are accepted are random (the clearing stream)."
+        ),
+        "sensing": (
+            "A trader knows only its own curve and units left; a meeting reveals nothing else."
+        ),
+    }
     honours_price_bounds: ClassVar[bool] = True
 
     def __init__(
@@ -162,6 +180,16 @@ class PropensityMatchingPerAgent:
     description: ClassVar[str] = (
         "per-agent propensity matching: each buyer in turn meets sellers (slow reference version)"
     )
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "The trader-by-trader version of propensity matching: each buyer in turn meets "
+            "partners and trades with the joint curve's peak probability."
+        ),
+        "interaction": ("Buyers, in a random order each round, meet random trading partners."),
+        "stochasticity": (
+            "The order of buyers, the partners met, the trade decisions and the prices are random."
+        ),
+    }
     per_agent: ClassVar[bool] = True
 
     def __init__(self, meetings: int = 1) -> None:
@@ -241,6 +269,21 @@ class CallAuction:
     description: ClassVar[str] = (
         "uniform-price call auction per connected part: one k-rule price where bids and asks cross"
     )
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A uniform-price call auction: bids and asks (reservation prices of the curves, "
+            "or values and costs) are sorted and cleared at one price per connected part of "
+            "the network (competitive equilibrium)."
+        ),
+        "interaction": (
+            "Indirect, through the order book of each connected part; winners are paired "
+            "along network edges."
+        ),
+        "stochasticity": (
+            "Ties among equal quotes and the pairing of winners on a sparse network are random."
+        ),
+        "objectives": ("Traders quote their reservation prices: no strategic quoting."),
+    }
     honours_price_bounds: ClassVar[bool] = True
 
     def __init__(self, k: float = 0.5, quotes: str = "reservation", threshold: float = 0.5) -> None:
@@ -312,6 +355,18 @@ class DoubleAuction:
     description: ClassVar[str] = (
         "continuous double auction with a standing book; zero-intelligence or curve-drawn quotes"
     )
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A continuous double auction with one standing quote per trader: an arriving bid "
+            "(ask) trades with the best ask (bid) among its partners when they cross."
+        ),
+        "interaction": ("Through the standing quotes of network partners."),
+        "stochasticity": (
+            "Arrival order and quotes are random (zero-intelligence quotes, or draws from "
+            "each trader's curve)."
+        ),
+        "sensing": ("An arriving trader sees its partners' standing quotes."),
+    }
     honours_price_bounds: ClassVar[bool] = True
 
     def __init__(
@@ -376,6 +431,14 @@ class BilateralBargaining:
     description: ClassVar[str] = (
         "bilateral bargaining: neighbours whose reservation prices cross trade at the midpoint"
     )
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "Neighbours whose reservation prices cross split the difference (the symmetric "
+            "Nash bargaining solution)."
+        ),
+        "interaction": ("Pairs of network neighbours."),
+        "stochasticity": ("The order in which deals are made is random."),
+    }
     honours_price_bounds: ClassVar[bool] = True
 
     def __init__(self, threshold: float = 0.5) -> None:

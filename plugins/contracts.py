@@ -7,6 +7,11 @@ anything of ours, so a student's rule needs no import from propensim to be a plu
   ``propensim plugins`` and in model descriptions);
 * takes its parameters as keyword arguments with defaults and stores them under the same names,
   doing nothing else in ``__init__`` (so a rule can be cloned, compared and swept from a spec);
+* may carry ``odd_notes``: a class attribute ``dict[str, str]`` of design-concept notes keyed by
+  the ODD protocol's concepts (``basic_principles``, ``emergence``, ``adaptation``,
+  ``objectives``, ``learning``, ``prediction``, ``sensing``, ``interaction``, ``stochasticity``,
+  ``collectives``, ``observation``), which ``propensim describe`` writes into the model
+  description (a plugin without them gets a visible placeholder);
 * may define ``check(self) -> None`` that raises ``ValueError`` naming a bad parameter and its
   allowed range; the registry calls it when it builds the plugin;
 * draws randomness only from the ``numpy.random.Generator`` it is handed, never from global state,

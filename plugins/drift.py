@@ -253,6 +253,9 @@ class NoDrift(_ForceRule):
     """
 
     description: ClassVar[str] = "curves do not move between rounds"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "adaptation": ("None: curves stay as they are."),
+    }
 
     def __init__(self) -> None:
         pass
@@ -294,6 +297,17 @@ class AnchorDrift(_ForceRule):
     """
 
     description: ClassVar[str] = "spring of each trader's curve around its private value or cost"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "adaptation": (
+            "Each trader's preferred price relaxes toward its private value or cost under the "
+            "entropic force of its own curve (an exact Ornstein-Uhlenbeck step)."
+        ),
+        "basic_principles": (
+            "Entropic force F = gamma d/dx ln P: the curve is a spring whose stiffness is "
+            "gamma / sigma^2."
+        ),
+        "stochasticity": ("Optional Gaussian noise on preferred prices (the drift stream)."),
+    }
 
     def __init__(
         self, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0, strength: float = 1.0
@@ -347,6 +361,17 @@ class OutcomeDrift(_ForceRule):
     """
 
     description: ClassVar[str] = "traders who traded ask a better price, traders who missed concede"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "adaptation": (
+            "Traders who traded ask a better price next round, traders who could trade but "
+            "missed concede."
+        ),
+        "learning": (
+            "A simple reinforcement of the last round's outcome; no memory beyond the current "
+            "curve."
+        ),
+        "sensing": ("A trader senses only whether it traded this round."),
+    }
 
     def __init__(
         self, step: float = 0.5, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0
@@ -399,6 +424,13 @@ class SocialDrift(_ForceRule):
     """
 
     description: ClassVar[str] = "pull of each trader's price toward its network neighbours' curves"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "adaptation": (
+            "Each trader's preferred price is pulled toward its network neighbours' curves."
+        ),
+        "sensing": ("Traders sense their neighbours' preferred prices."),
+        "interaction": ("Through the social edges of the network, whatever the neighbours' roles."),
+    }
 
     def __init__(
         self, strength: float = 1.0, eta: float = 1.0, noise: float = 0.0, dt: float = 1.0
@@ -453,6 +485,12 @@ class WidthAdaptation(_ForceRule):
     """
 
     description: ClassVar[str] = "curves narrow after a trade and widen after a miss"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "adaptation": (
+            "Curves narrow after a trade (more certainty about the price) and widen after a miss."
+        ),
+        "sensing": ("A trader senses only whether it traded this round."),
+    }
 
     def __init__(
         self,
@@ -531,6 +569,12 @@ class DriftSum:
     """
 
     description: ClassVar[str] = "sum of force rules stepped exactly as one Ornstein-Uhlenbeck move"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "adaptation": (
+            "Several drift rules at once: forces add into one exact Ornstein-Uhlenbeck step; "
+            "rules without a force part are applied after it, in order."
+        ),
+    }
 
     def __init__(
         self, rules: Iterable = (), eta: float = 1.0, noise: float = 0.0, dt: float = 1.0

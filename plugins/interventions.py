@@ -107,6 +107,11 @@ class RemoveHubs(_Removal):
     """
 
     description: ClassVar[str] = "remove the k best-connected traders (targeted removal)"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "Targeted removal of the best-connected traders (Albert, Jeong and Barabasi 2000)."
+        ),
+    }
 
     def __init__(self, k: int = 1, role: str | None = None, start: int = 0, until=None) -> None:
         self.k = k
@@ -165,6 +170,13 @@ class RemoveTraders(_Removal):
     """
 
     description: ClassVar[str] = "remove traders by id, role, attribute, or at random"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "Removal of chosen or random traders; a random removal of as many traders is the "
+            "control for a targeted one."
+        ),
+        "stochasticity": ("A random choice draws from the intervention's own stream."),
+    }
 
     def __init__(
         self,
@@ -274,6 +286,9 @@ class CutRegions(_Window):
     """
 
     description: ClassVar[str] = "cut every trading link between regions"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("Links between regions are cut while it acts."),
+    }
 
     def __init__(self, regions=None, attribute: str = "region", start: int = 0, until=None) -> None:
         self.regions = regions
@@ -318,6 +333,10 @@ class CapDegree(_Window):
     """
 
     description: ClassVar[str] = "cap every trader's number of trading partners"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("No trader keeps more than a given number of partners while it acts."),
+        "stochasticity": ("Which links are kept is random (the intervention's own stream)."),
+    }
 
     def __init__(self, max_degree: int = 5, start: int = 0, until=None) -> None:
         self.max_degree = max_degree
@@ -355,6 +374,9 @@ class SwitchClearing(_Window):
     """
 
     description: ClassVar[str] = "switch to another clearing rule"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": ("The market's clearing rule changes at a round."),
+    }
 
     def __init__(self, rule="call_auction", start: int = 0, until=None) -> None:
         self.rule = rule
@@ -422,6 +444,13 @@ class PriceCeiling(_Bound):
     """
 
     description: ClassVar[str] = "price ceiling: no trade above a price"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "No trade above a price; the meaning for each clearing rule is stated in the "
+            "model description (MODEL.md section 9)."
+        ),
+        "observation": ("Unmet demand at the ceiling is recorded every round."),
+    }
 
     def __init__(self, price: float = 100.0, start: int = 0, until=None) -> None:
         self.price = price
@@ -458,6 +487,10 @@ class PriceFloor(_Bound):
     """No trade below ``price``; unmet supply at the floor recorded (metric ``unmet_supply``)."""
 
     description: ClassVar[str] = "price floor: no trade below a price"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": ("No trade below a price."),
+        "observation": ("Unmet supply at the floor is recorded every round."),
+    }
 
     def __init__(self, price: float = 0.0, start: int = 0, until=None) -> None:
         self.price = price
@@ -491,6 +524,13 @@ class UnitTax(_Window):
     """
 
     description: ClassVar[str] = "per-unit tax levied on the buyer or the seller side"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A per-unit tax drives a wedge between what the buyer pays and the seller "
+            "receives; revenue is a transfer to the treasury."
+        ),
+        "observation": ("Tax revenue is recorded every round and counted in total surplus."),
+    }
     sign: ClassVar[float] = 1.0
 
     def __init__(
@@ -529,6 +569,11 @@ class UnitSubsidy(UnitTax):
     """
 
     description: ClassVar[str] = "per-unit subsidy to the buyer or the seller side"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "A per-unit subsidy (a negative tax); its cost is subtracted from total surplus."
+        ),
+    }
     sign: ClassVar[float] = -1.0
 
 
@@ -547,6 +592,12 @@ class Entry(_Window):
     """
 
     description: ClassVar[str] = "new traders enter the market"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": ("New traders enter at a round with their own curves and links."),
+        "stochasticity": (
+            "Entrants' parameters and links are drawn from the intervention's own stream."
+        ),
+    }
 
     def __init__(
         self,
@@ -648,6 +699,11 @@ class ValueShock(_Window):
     """
 
     description: ClassVar[str] = "shock to buyers' values or sellers' costs"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "basic_principles": (
+            "Buyers' values or sellers' costs change at a round (additive or proportional)."
+        ),
+    }
 
     def __init__(
         self,

@@ -280,6 +280,9 @@ class Complete:
     """
 
     description: ClassVar[str] = "complete bipartite: every buyer may trade with every seller"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("Every buyer may trade with every seller (a well-mixed market)."),
+    }
 
     def __init__(self) -> None:
         pass
@@ -322,6 +325,10 @@ class ErdosRenyi:
     """
 
     description: ClassVar[str] = "random buyer-seller edges with a given mean trading degree"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("Random buyer-seller links with a given mean trading degree."),
+        "stochasticity": ("The links are drawn at random (the network stream)."),
+    }
 
     def __init__(self, mean_degree: float = 10.0) -> None:
         self.mean_degree = mean_degree
@@ -366,6 +373,10 @@ class RandomBipartite:
     """
 
     description: ClassVar[str] = "each buyer-seller pair joined independently with probability p"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("Each buyer-seller pair is linked independently with probability p."),
+        "stochasticity": ("The links are drawn at random (the network stream)."),
+    }
 
     def __init__(self, p: float = 0.1) -> None:
         self.p = p
@@ -407,6 +418,12 @@ class SmallWorld:
     """
 
     description: ClassVar[str] = "Watts-Strogatz small world over traders in random ring order"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": (
+            "A ring of traders with local links and a share of random shortcuts (Watts-Strogatz)."
+        ),
+        "stochasticity": ("Ring order and rewiring are random (the network stream)."),
+    }
 
     def __init__(self, k: int = 10, p: float = 0.1) -> None:
         self.k = k
@@ -452,6 +469,13 @@ class ScaleFree:
     """
 
     description: ClassVar[str] = "Barabasi-Albert preferential attachment (hubs) over traders"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": (
+            "Preferential attachment: a few hubs with many partners, most traders with few "
+            "(Barabasi-Albert)."
+        ),
+        "stochasticity": ("Attachment is random (the network stream)."),
+    }
 
     def __init__(self, m: int = 5) -> None:
         self.m = m
@@ -501,6 +525,17 @@ class Regions:
     """
 
     description: ClassVar[str] = "traders in regions of the unit square, linked within a radius"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": (
+            "Traders placed around region centres in the unit square, linked when close: "
+            "trade is local."
+        ),
+        "collectives": (
+            "Regions are groups of traders (the network attribute 'region'); they do not act "
+            "as agents."
+        ),
+        "stochasticity": ("Centres, membership and positions are random (the network stream)."),
+    }
 
     def __init__(self, n_regions: int = 4, radius: float = 0.2, spread: float | None = 0.1) -> None:
         self.n_regions = n_regions
@@ -581,6 +616,12 @@ class EdgeListFile:
     """
 
     description: ClassVar[str] = "edges read from a text edge-list file (one 'u v' pair a line)"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("Links read from an edge-list file (input data)."),
+    }
+    #: Parameters naming files: a spec resolves them against its own folder and fingerprints
+    #: their content (sha256), so an edited file is never mistaken for the old one.
+    file_parameters: ClassVar[tuple[str, ...]] = ("path",)
 
     def __init__(self, path: str | os.PathLike = "", delimiter: str | None = None) -> None:
         self.path = path
@@ -653,6 +694,11 @@ class GraphMLFile:
     """
 
     description: ClassVar[str] = "network read from a GraphML file (node roles checked if present)"
+    odd_notes: ClassVar[dict[str, str]] = {
+        "interaction": ("Links (and node attributes) read from a GraphML file (input data)."),
+    }
+    #: Parameters naming files (see EdgeListFile.file_parameters).
+    file_parameters: ClassVar[tuple[str, ...]] = ("path",)
 
     def __init__(self, path: str | os.PathLike = "", role_attr: str = "role") -> None:
         self.path = path
