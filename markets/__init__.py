@@ -18,6 +18,11 @@ _NAMES = {
     "DEFAULT_METRICS": "engine",
     "Recorder": "recorder",
     "PricePolicy": "schedule",
+    "EventMarket": "events",
+    "build_event_market": "events",
+    "simulate_reactions": "events",
+    "Shop": "supply_chain",
+    "build_shop": "supply_chain",
 }
 _NAMES |= {
     "max_surplus": "propensim.plugins.metrics",
