@@ -778,6 +778,38 @@ def _sweep(
     store.flush()
 
 
+_NUMBER = r"-?\d+(?:\.\d+)?(?:e[-+]?\d+)?"
+
+
+def merge_warnings(counts: Mapping[str, int]) -> dict[str, int]:
+    """One line per kind of warning: messages that differ only in their numbers become one.
+
+    Each number that differs is shown as its range over the runs (``3-12 of 40 traders ...``);
+    the run counts add up. Messages with other differences stay apart.
+    """
+    import re
+
+    groups: dict[str, list[str]] = {}
+    for msg in counts:
+        groups.setdefault(re.sub(_NUMBER, "#", msg), []).append(msg)
+    out: dict[str, int] = {}
+    for shape, msgs in groups.items():
+        total = sum(counts[m] for m in msgs)
+        if len(msgs) == 1:
+            out[msgs[0]] = total
+            continue
+        columns = list(zip(*(re.findall(_NUMBER, m) for m in msgs), strict=True))
+        pieces = shape.split("#")
+        text = pieces[0]
+        for piece, col in zip(pieces[1:], columns, strict=True):
+            values = sorted({float(x) for x in col})
+            shown = {float(x): x for x in col}
+            lo, hi = shown[values[0]], shown[values[-1]]
+            text += (lo if lo == hi else f"{lo}-{hi}") + piece
+        out[text] = out.get(text, 0) + total
+    return out
+
+
 def _task_failure(plan: RunPlan, exc: BaseException) -> RunResult:
     return RunResult(
         run_id=plan.run_id,
@@ -918,7 +950,7 @@ def run_plans(
         if store.counts()["failed"] and status == "complete":
             status = "complete-with-failures"
         store.finish(status)
-        for msg, count in store.warnings.items():
+        for msg, count in merge_warnings(store.warnings).items():
             warnings.warn(f"{msg} ({count} run(s))", RuntimeWarning, stacklevel=3)
     return store
 

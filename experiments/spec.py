@@ -606,6 +606,7 @@ class _Builder:
         }
         self._check_set_paths(arms, design, points)
         self._cache: dict[str, Any] = {}
+        self._hashes: dict[str, str] = {}  # input file (absolute) -> sha256 of its content
         resolved_base = self._resolve_config(base, None, None, {})
         top = self._interventions(m.get("interventions") or [], ("interventions",), exp)
         per_arm = [
@@ -621,6 +622,8 @@ class _Builder:
                 # sections are shared between configs (cached): build new dicts on top
                 cfg["market"] = {**cfg["market"], "traders_every": collect["traders_every"]}
                 cfg["metrics"] = list(collect["metrics"])
+                if inputs := self._inputs(cfg):  # file contents enter the run ids
+                    cfg["inputs"] = inputs
                 items = [*top, *(per_arm[a] if arms else [])]
                 if items:
                     cfg["interventions"] = items
@@ -1016,8 +1019,60 @@ class _Builder:
             _check_drift(drift)
             return _fill_drift(drift)
         table = _check_model(PluginModel, section, data)
+        table = self._resolve_files(section, table)
         _check_plugin(PLUGIN_KINDS[section], (section,), table)
         return _fill_plugin(PLUGIN_KINDS[section], table)
+
+    def _resolve_files(self, section: str, table: dict[str, Any]) -> dict[str, Any]:
+        """Resolve the plugin's file parameters against the spec file's folder; hash them.
+
+        A plugin lists the parameters that name files in ``file_parameters``. A relative path
+        is read from the folder of the spec file (from the current folder for a spec given as a
+        dict) and written out absolute; its content's SHA-256 is kept for the run ids.
+        """
+        import os
+
+        from propensim.plugins import registry
+
+        try:
+            cls = registry.get_plugin(PLUGIN_KINDS[section], table["name"])
+        except registry.UnknownPluginError:
+            return table  # reported by _check_plugin
+        names = [k for k in getattr(cls, "file_parameters", ()) if isinstance(table.get(k), str)]
+        if not names:
+            return table
+        table = dict(table)
+        for key in names:
+            given = Path(table[key]).expanduser()
+            if not str(table[key]):
+                continue  # the plugin's own check names the missing path
+            relative = not given.is_absolute()
+            base = Path(self.file).parent if (relative and self.file) else Path()
+            path = Path(os.path.abspath(base / given))
+            where = " (a relative path is read from the spec file's folder)" if relative else ""
+            if not path.is_file():
+                raise _Problem((section, key), f"no such file {str(path)!r}{where}")
+            if str(path) not in self._hashes:
+                try:
+                    self._hashes[str(path)] = hashlib.sha256(path.read_bytes()).hexdigest()
+                except OSError as exc:
+                    raise _Problem(
+                        (section, key), f"cannot read {str(path)!r}: {exc.strerror or exc}"
+                    ) from None
+            table[key] = str(path)
+        return table
+
+    def _inputs(self, cfg: dict[str, Any]) -> dict[str, str]:
+        """``{path: sha256}`` of every input file a run configuration reads."""
+        out = {}
+        for section in PLUGIN_KINDS:
+            table = cfg.get(section)
+            if isinstance(table, dict):
+                for value in table.values():
+                    if isinstance(value, str) and value in self._hashes:
+                        out[value] = self._hashes[value]
+        return out
+
 
 
 def _timed_rounds(configs: dict) -> int:

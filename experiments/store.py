@@ -300,14 +300,11 @@ class Store:
             raise StoreError(f"{path}: exists and is not a folder; choose a new results folder")
         resumed = mpath.exists()
         old: dict[str, Any] = {}
+        inputs = _plan_inputs(plans)
         if resumed:
             old = _read_manifest(path)
-            if old.get("fingerprint") != fingerprint:
-                raise StoreError(
-                    f"{path} holds results of a different spec (fingerprint "
-                    f"{str(old.get('fingerprint'))[:12]} != {fingerprint[:12]}); "
-                    "use a new folder (--out) for a changed spec"
-                )
+            if old.get("fingerprint") != fingerprint or (old.get("inputs") or {}) != inputs:
+                _check_growth(path, old, spec, inputs, fingerprint)
         elif path.exists() and any(p.name != ".lock" for p in path.iterdir()):
             raise StoreError(
                 f"{path}: not a propensim results folder (no manifest.json) and not empty; "
@@ -346,6 +343,7 @@ class Store:
             "backend": backend or {},
             "metrics": list(metrics),
             "parameters": list(store._schema.params),
+            **({"inputs": inputs} if inputs else {}),
             "counts": store.counts(),
         }
         store.manifest = manifest
@@ -364,15 +362,17 @@ class Store:
                     f"{runs_path}: its columns do not match this spec's; "
                     "use a new folder (--out) for this spec"
                 )
-            by_index = {p.index: p for p in plans}
+            # Rows are matched by run id, not position: an experiment that grew (more
+            # replicates or samples) puts its completed runs at new indices.
             for row in table.to_pylist():
-                plan = by_index.get(row["index"])
-                if plan is None or plan.run_id != row["run_id"]:
+                same = self._plans.get(row["run_id"])
+                if not same:
                     raise StoreError(
                         f"{runs_path}: run {row['index']} does not belong to this spec; "
                         "use a new folder (--out)"
                     )
-                self._rows[int(row["index"])] = row
+                for plan in same:
+                    self._rows[int(plan.index)] = {**row, "index": int(plan.index)}
         for fname, target in (
             ("timings.parquet", self._timings),
             ("failures.parquet", self._failures),
@@ -383,6 +383,11 @@ class Store:
                     target[row["run_id"]] = row
         ok = self.ok_ids()
         self._failures = {k: v for k, v in self._failures.items() if k not in ok}
+        for target in (self._timings, self._failures):  # first index in this spec's order
+            for run_id in [k for k in target if k not in self._plans]:
+                del target[run_id]
+            for run_id, row in target.items():
+                row["index"] = min(int(p.index) for p in self._plans[run_id])
         # Check every part file reads before deleting any of them.
         for table_name in TABLES:
             for part in sorted((self.path / table_name).glob("part-*.parquet")):
@@ -593,6 +598,86 @@ class Store:
 
     def __repr__(self) -> str:
         return f"Store({str(self.path)!r}, counts={self.counts()})"
+
+
+def _plan_inputs(plans: Sequence) -> dict[str, str]:
+    """``{path: sha256}`` of every input file the plans read (their ``config["inputs"]``)."""
+    out: dict[str, str] = {}
+    for plan in plans:
+        out.update((plan.config or {}).get("inputs") or {})
+    return dict(sorted(out.items()))
+
+
+#: Fields an experiment may change and still resume into its folder: they add runs (more
+#: replicates; more points of a random or Sobol' design, whose first points stay the same) or
+#: change no run (the description, the run limit).
+GROWABLE = ("experiment.replicates", "design.samples", "design.max_runs", "experiment.description")
+
+
+def _flat(doc: Any, prefix: str = "") -> dict[str, Any]:
+    if isinstance(doc, dict):
+        out: dict[str, Any] = {}
+        for k, v in doc.items():
+            key = f"{prefix}.{k}" if prefix else str(k)
+            out.update(_flat(v, key) if isinstance(v, dict) and v else {key: v})
+        return out
+    return {prefix: doc}
+
+
+def spec_changes(old: dict | None, new: dict | None) -> list[tuple[str, Any, Any]]:
+    """``(dotted field, old value, new value)`` of every field two resolved specs differ in."""
+    a, b = _flat(old or {}), _flat(new or {})
+    missing = object()
+    out = []
+    for key in [*a, *(k for k in b if k not in a)]:
+        va, vb = a.get(key, missing), b.get(key, missing)
+        if va != vb:
+            out.append((key, None if va is missing else va, None if vb is missing else vb))
+    return out
+
+
+def _short(value: Any) -> str:
+    text = json.dumps(_json_safe(value)) if not isinstance(value, str) else repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _check_growth(path: Path, old: dict, spec: dict | None, inputs: dict, fingerprint: str):
+    """Refuse a changed spec, naming what changed, unless it only grows the experiment."""
+    if spec is None or old.get("spec") is None:
+        raise StoreError(
+            f"{path} holds results of a different spec (fingerprint "
+            f"{str(old.get('fingerprint'))[:12]} != {fingerprint[:12]}); "
+            "use a new folder (--out) for a changed spec"
+        )
+    changes = spec_changes(old["spec"], _json_safe(spec))  # the manifest holds it JSON-safe
+    old_inputs = old.get("inputs") or {}
+    for file in dict.fromkeys([*old_inputs, *inputs]):
+        if old_inputs.get(file) != inputs.get(file):
+            was, now = old_inputs.get(file), inputs.get(file)
+            what = "content changed" if was and now else ("new" if now else "no longer read")
+            changes.append((f"input file {file}", was, now, what))
+    refused = []
+    kind = (spec.get("design") or {}).get("kind")
+    for change in changes:
+        key, was, now = change[:3]
+        if len(change) == 4:
+            refused.append(f"{key} ({change[3]})")
+            continue
+        shrinks = key in ("experiment.replicates", "design.samples") and (
+            not isinstance(was, int) or not isinstance(now, int) or now < was
+        )
+        lhs = key == "design.samples" and kind not in ("random", "sobol")
+        if key not in GROWABLE or shrinks or lhs:
+            why = " (fewer than stored)" if shrinks else ""
+            why += f" (a {kind} design of another size has other points)" if lhs else ""
+            refused.append(f"{key}: {_short(was)} -> {_short(now)}{why}")
+    if refused or not changes:
+        listed = "; ".join(refused) if refused else "the run plans"
+        raise StoreError(
+            f"{path} holds results of a different spec; changed: {listed}; use a new folder "
+            "(--out) for a changed spec (only more experiment.replicates, or more design.samples "
+            "of a random or sobol design, grow an experiment in place)"
+        )
 
 
 def _read_manifest(path: Path) -> dict[str, Any]:

@@ -403,11 +403,14 @@ def _warn_if_no_trade_possible(pop: Population, net: TradingNetwork) -> None:
     has_seller = np.zeros(comp.max() + 1, dtype=bool)
     has_buyer[comp[pop.role == BUYER]] = True
     has_seller[comp[pop.role == SELLER]] = True
-    lonely = int(np.count_nonzero(has_buyer ^ has_seller))
+    one_sided = has_buyer ^ has_seller  # shape: (n_parts,)
+    lonely = int(np.count_nonzero(one_sided))
     if lonely:
+        stranded = int(np.count_nonzero(one_sided[comp]))  # traders in those parts
+        # One line, whatever the count of parts: the numbers, then a fixed text.
         warnings.warn(
-            f"{lonely} part(s) of the trading network hold only buyers or only sellers; "
-            "their traders cannot trade",
+            f"{stranded} of {comp.size} traders have no possible trading partner (in {lonely} "
+            "part(s) of the trading network that hold only buyers or only sellers)",
             RuntimeWarning,
             stacklevel=3,
         )

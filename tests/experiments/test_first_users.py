@@ -1,0 +1,185 @@
+"""What the first users tripped over (issue 15): input files, growing experiments, scoped arms.
+
+Every test here failed before the change it covers.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from pathlib import Path
+
+import pytest
+
+from propensim.experiments.runner import run_experiment
+from propensim.experiments.spec import SpecError, load_spec
+from propensim.experiments.store import StoreError, load
+
+from _checksums import tree_checksums as folder_checksums
+
+EDGES = "0 3\n1 4\n2 5\n0 4\n"
+
+NETWORK_SPEC = """
+[experiment]
+name = "files"
+seed = 5
+rounds = 3
+
+[population]
+n_buyers = 3
+n_sellers = 3
+
+[network]
+name = "edge_list"
+path = "data/edges.txt"
+
+[collect]
+metrics = ["volume"]
+"""
+
+
+def _write_network_spec(folder: Path) -> Path:
+    (folder / "data").mkdir(parents=True)
+    (folder / "data" / "edges.txt").write_text(EDGES)
+    spec = folder / "spec.toml"
+    spec.write_text(NETWORK_SPEC)
+    return spec
+
+
+# -- input files -------------------------------------------------------------------------------
+def test_spec_file_paths_resolve_against_the_spec_folder(tmp_path, monkeypatch):
+    spec_path = _write_network_spec(tmp_path / "study")
+    monkeypatch.chdir(tmp_path)  # not the spec's folder: data/edges.txt is not here
+    spec = load_spec(spec_path)
+    path = spec.config()["network"]["path"]
+    assert Path(path) == (tmp_path / "study" / "data" / "edges.txt").resolve()
+    store = run_experiment(spec, tmp_path / "out", workers=1, progress=False)
+    assert store.counts()["ok"] == 1
+
+
+def test_a_missing_input_file_is_a_located_spec_error(tmp_path):
+    spec_path = _write_network_spec(tmp_path)
+    (tmp_path / "data" / "edges.txt").unlink()
+    with pytest.raises(SpecError) as info:
+        load_spec(spec_path)
+    msg = str(info.value)
+    assert msg.startswith(f"{spec_path}:13: network.path: no such file")
+    assert "spec file's folder" in msg
+
+
+def test_input_file_content_enters_run_ids_and_a_changed_file_is_refused(tmp_path):
+    spec_path = _write_network_spec(tmp_path)
+    first = load_spec(spec_path).runs()[0].run_id
+    run_experiment(spec_path, tmp_path / "out", workers=1, progress=False)
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    assert list(manifest["inputs"].values())[0]  # the sha256 is recorded
+    (tmp_path / "data" / "edges.txt").write_text(EDGES + "1 3\n")
+    assert load_spec(spec_path).runs()[0].run_id != first
+    before = folder_checksums(tmp_path / "out")
+    with pytest.raises(StoreError) as info:
+        run_experiment(spec_path, tmp_path / "out", workers=1, progress=False)
+    assert "edges.txt (content changed)" in str(info.value)
+    assert folder_checksums(tmp_path / "out") == before  # nothing stored is lost
+
+
+# -- growing an experiment ---------------------------------------------------------------------
+GROW_SPEC = """
+[experiment]
+name = "grow"
+seed = 11
+rounds = 3
+replicates = {replicates}
+
+[population]
+n_buyers = 4
+n_sellers = 4
+
+[design]
+kind = "{kind}"
+samples = {samples}
+
+[design.parameters]
+"population.sigma" = {{ low = 2.0, high = 8.0 }}
+
+[[arms]]
+name = "match"
+
+[[arms]]
+name = "auction"
+set = {{ "clearing.name" = "call_auction" }}
+
+[collect]
+metrics = ["volume", "mean_price"]
+"""
+
+
+def _grow(tmp_path, name, **fields) -> Path:
+    path = tmp_path / f"{name}.toml"
+    path.write_text(GROW_SPEC.format(**{"replicates": 2, "kind": "random", "samples": 2, **fields}))
+    return path
+
+
+@pytest.mark.parametrize("kind", ["random", "sobol"])
+def test_more_replicates_and_samples_reuse_completed_runs(tmp_path, kind):
+    out = tmp_path / "grown"
+    small = _grow(tmp_path, "small", kind=kind, samples=2, replicates=2)
+    run_experiment(small, out, workers=1, progress=False)
+    done = set(load(out).runs["run_id"])
+    big = _grow(tmp_path, "big", kind=kind, samples=4, replicates=3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # Sobol' sizes: powers of 2 here anyway
+        plans = load_spec(big).runs()
+        assert done <= {p.run_id for p in plans}  # the first points and replicates stay
+        store = run_experiment(big, out, workers=1, progress=False)
+    timings = load(out).timings
+    assert store.counts() == {"runs": 24, "distinct": 24, "ok": 24, "failed": 0, "pending": 0}
+    # runs that were done were not run again: their timings are the old ones, 8 new + 16 old
+    assert len(timings) == 24
+    # and the folder equals one that ran the big spec at once, byte for byte
+    fresh = tmp_path / "fresh"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        run_experiment(big, fresh, workers=1, progress=False)
+    assert (out / "runs.parquet").read_bytes() == (fresh / "runs.parquet").read_bytes()
+
+
+def test_growing_runs_only_the_new_runs(tmp_path, monkeypatch):
+    from propensim.experiments import runner
+
+    out = tmp_path / "grown"
+    run_experiment(_grow(tmp_path, "a", replicates=1), out, workers=1, progress=False)
+    ran = []
+    real = runner._run
+    monkeypatch.setattr(runner, "_run", lambda plan: ran.append(plan.run_id) or real(plan))
+    run_experiment(_grow(tmp_path, "b", replicates=2), out, workers=1, progress=False)
+    assert len(ran) == 4  # 2 points x 1 new replicate x 2 arms
+
+
+def test_a_changed_spec_is_refused_naming_the_fields(tmp_path):
+    out = tmp_path / "out"
+    run_experiment(_grow(tmp_path, "a"), out, workers=1, progress=False)
+    changed = _grow(tmp_path, "b").read_text().replace("seed = 11", "seed = 12")
+    changed = changed.replace("n_buyers = 4", "n_buyers = 5")
+    (tmp_path / "b.toml").write_text(changed)
+    before = folder_checksums(out)
+    with pytest.raises(StoreError) as info:
+        run_experiment(tmp_path / "b.toml", out, workers=1, progress=False)
+    msg = str(info.value)
+    assert "experiment.seed: 11 -> 12" in msg
+    assert "population.n_buyers: 4 -> 5" in msg
+    assert "\n" not in msg
+    assert folder_checksums(out) == before
+
+
+@pytest.mark.parametrize(
+    ("fields", "expect"),
+    [
+        ({"replicates": 1}, "experiment.replicates: 2 -> 1 (fewer than stored)"),
+        ({"kind": "lhs", "samples": 4}, "design.kind"),
+    ],
+)
+def test_shrinking_or_resizing_an_unextendable_design_is_refused(tmp_path, fields, expect):
+    out = tmp_path / "out"
+    run_experiment(_grow(tmp_path, "a"), out, workers=1, progress=False)
+    with pytest.raises(StoreError, match=expect.replace("(", r"\(").replace(")", r"\)")):
+        run_experiment(_grow(tmp_path, "b", **fields), out, workers=1, progress=False)
