@@ -199,6 +199,8 @@ class ArmModel(_Model):
     description: str = ""
     set: dict[str, Any] = Field(default_factory=dict)
     interventions: list[PluginModel] = Field(default_factory=list)
+    #: Design parameters that apply to this arm only (and to the other arms listing them).
+    parameters: list[str] = Field(default_factory=list)
 
 
 class CompareModel(_Model):

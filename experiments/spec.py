@@ -605,6 +605,7 @@ class _Builder:
             **{k: m[k] for k in MODE_SECTIONS if k in m},
         }
         self._check_set_paths(arms, design, points)
+        scoped = self._scoped_parameters(arms, design, points)
         self._cache: dict[str, Any] = {}
         self._hashes: dict[str, str] = {}  # input file (absolute) -> sha256 of its content
         resolved_base = self._resolve_config(base, None, None, {})
@@ -618,7 +619,9 @@ class _Builder:
         for p, point in enumerate(points):
             for a in range(n_arms):
                 arm = arms[a] if arms else None
-                cfg = self._resolve_config(base, arm, a if arms else None, point, p)
+                # a design parameter some arms list in their `parameters` applies to those only
+                own = {k: v for k, v in point.items() if a in scoped.get(k, (a,))}
+                cfg = self._resolve_config(base, arm, a if arms else None, own, p)
                 # sections are shared between configs (cached): build new dicts on top
                 cfg["market"] = {**cfg["market"], "traders_every": collect["traders_every"]}
                 cfg["metrics"] = list(collect["metrics"])
@@ -647,6 +650,7 @@ class _Builder:
             resolved["arms"] = [
                 {"name": a["name"], "description": a.get("description", ""), "set": a["set"]}
                 | ({"interventions": per_arm[i]} if per_arm[i] else {})
+                | ({"parameters": a["parameters"]} if a.get("parameters") else {})
                 for i, a in enumerate(arms)
             ]
         if compare is not None:
@@ -866,6 +870,26 @@ class _Builder:
                 src = ("design", "points", i, key) if design["kind"] == "points" else None
                 check(key, src or ("design", "parameters", key), value)
 
+    def _scoped_parameters(self, arms: list, design: dict, points: list) -> dict[str, set]:
+        """Design parameter -> the arms (indices) it applies to, for those some arm lists.
+
+        An arm's ``parameters`` lists design parameters that apply to it and not to the arms
+        that do not list them (``clearing.meetings`` in a propensity arm, not in a call-auction
+        arm). A parameter no arm lists applies to every arm.
+        """
+        names = list(dict.fromkeys(k for point in points for k in point))
+        scoped: dict[str, set] = {}
+        for a, arm in enumerate(arms):
+            for j, key in enumerate(arm.get("parameters") or []):
+                if key not in names:
+                    allowed = ", ".join(names) if names else "none (the design has no parameters)"
+                    raise self.error(
+                        ("arms", a, "parameters", j),
+                        f"{key!r} is not a design parameter; allowed: {allowed}",
+                    )
+                scoped.setdefault(key, set()).add(a)
+        return scoped
+
     def _interventions(self, items: list, where: tuple, exp: dict) -> list[dict[str, Any]]:
         """Check each intervention table (plugin, parameters, rounds); fill its defaults."""
         out = []
@@ -952,6 +976,11 @@ class _Builder:
                         src = ("design", "parameters", dotted)
                     note = f"design point {p}: {dotted} = {value!r}"
                     note += f", {arm_note}" if arm_note else ""
+                    if arm is not None and "unknown parameter" in prob.problem:
+                        note += (
+                            f"; to sweep {dotted} only in the arms that have it, list it in "
+                            f'their parameters = ["{dotted}"]'
+                        )
                     return self.error(prob.path, prob.problem, source=src, note=note)
             for key in arm_sets:
                 n = min(len(key), len(prob.path))

@@ -183,3 +183,103 @@ def test_shrinking_or_resizing_an_unextendable_design_is_refused(tmp_path, field
     run_experiment(_grow(tmp_path, "a"), out, workers=1, progress=False)
     with pytest.raises(StoreError, match=expect.replace("(", r"\(").replace(")", r"\)")):
         run_experiment(_grow(tmp_path, "b", **fields), out, workers=1, progress=False)
+
+
+# -- arm-scoped design parameters ----------------------------------------------------------------
+SCOPED_SPEC = """
+[experiment]
+name = "meetings-vs-auction"
+seed = 3
+rounds = 4
+replicates = 2
+
+[population]
+n_buyers = 6
+n_sellers = 6
+
+[design]
+kind = "sobol"
+samples = 4
+
+[design.parameters]
+"population.sigma" = { low = 2.0, high = 8.0 }
+"clearing.meetings" = { low = 1, high = 4, integer = true }
+
+[[arms]]
+name = "matching"
+parameters = ["clearing.meetings"]
+
+[[arms]]
+name = "auction"
+set = { "clearing.name" = "call_auction" }
+
+[collect]
+metrics = ["volume", "efficiency"]
+"""
+
+
+def test_a_parameter_only_one_arm_has_is_one_valid_spec(tmp_path):
+    path = tmp_path / "scoped.toml"
+    path.write_text(SCOPED_SPEC)
+    spec = load_spec(path)
+    meetings = {p["clearing.meetings"] for p in spec.points}
+    assert len(meetings) > 1
+    for p, point in enumerate(spec.points):
+        matching, auction = spec.config(p, "matching"), spec.config(p, "auction")
+        assert matching["clearing"]["meetings"] == point["clearing.meetings"]
+        assert "meetings" not in auction["clearing"]
+        # what the arms share applies to both: the pair differs only in the rule
+        assert matching["population"] == auction["population"]
+        assert matching["population"]["sigma"] == point["population.sigma"]
+    store = run_experiment(spec, tmp_path / "out", workers=1, progress=False)
+    table = store.comparison
+    assert set(table["n_pairs"]) == {8}  # 4 points x 2 replicates, paired on seed and sigma
+
+
+def test_without_the_arm_list_the_error_says_how_to_scope(tmp_path):
+    path = tmp_path / "unscoped.toml"
+    path.write_text(SCOPED_SPEC.replace('parameters = ["clearing.meetings"]\n', ""))
+    with pytest.raises(SpecError, match=r'list it in their parameters = \["clearing.meetings"\]'):
+        load_spec(path)
+
+
+def test_an_arm_listing_a_name_that_is_not_a_design_parameter_is_refused(tmp_path):
+    path = tmp_path / "typo.toml"
+    path.write_text(SCOPED_SPEC.replace('["clearing.meetings"]', '["clearing.meeting"]'))
+    with pytest.raises(SpecError) as info:
+        load_spec(path)
+    msg = str(info.value)
+    assert msg.startswith(f"{path}:22: arms[0].parameters[0]: 'clearing.meeting' is not a design")
+    assert "allowed: population.sigma, clearing.meetings" in msg
+
+
+# -- the trading-network warning -----------------------------------------------------------------
+def test_network_warning_is_one_line_with_the_traders_who_cannot_trade(tmp_path):
+    from propensim.markets import build_market
+
+    edges = tmp_path / "edges.txt"
+    edges.write_text("0 3\n")  # traders 1, 2, 4, 5 are alone: four one-sided parts
+    cfg = {
+        "population": {"n_buyers": 3, "n_sellers": 3},
+        "network": {"name": "edge_list", "path": str(edges)},
+    }
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        build_market(cfg, seed=1, mesa=False)
+    texts = [str(w.message) for w in caught if "trading partner" in str(w.message)]
+    assert len(texts) == 1 and "\n" not in texts[0]
+    assert texts[0].startswith("4 of 6 traders have no possible trading partner (in 4 part(s)")
+
+
+def test_warnings_that_differ_only_in_numbers_merge_into_one_line():
+    from propensim.experiments.runner import merge_warnings
+
+    counts = {
+        "3 of 40 traders have no possible trading partner (in 1 part(s) of it)": 2,
+        "12 of 40 traders have no possible trading partner (in 3 part(s) of it)": 5,
+        "another warning": 1,
+    }
+    assert merge_warnings(counts) == {
+        "3-12 of 40 traders have no possible trading partner (in 1-3 part(s) of it)": 7,
+        "another warning": 1,
+    }
