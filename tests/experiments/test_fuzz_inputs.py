@@ -467,6 +467,25 @@ def test_bad_arguments_many(data, capsys, store, cwd, tmp_path_factory):
     assert _check_arguments(data, capsys, store, cwd, tmp_path_factory) == []
 
 
+# -- found by the fuzzer in the spec checks, and fixed -------------------------------------------
+@pytest.mark.parametrize(
+    "item, named",
+    [
+        ("population.stock=99999999999999999999", "population.stock: must be less than"),
+        ("population.capacity=99999999999999999999", "population.capacity: must be less than"),
+        ("population.curve_params={a=1}", "population.curve_params: unknown parameter 'a'"),
+        ('population.curve_params={""=1}', "population.curve_params: unknown parameter ''"),
+        ("population.value=nan", "population.value: "),
+        ("population.cost={uniform=[nan, 1.0]}", "population.cost: "),
+        ("compare.nope=1", "allowed: baseline, metrics, confidence, bootstrap"),
+    ],
+)
+def test_spec_problems_found_by_the_fuzzer_name_their_field(item, named, capsys, store, cwd):
+    spec = cwd.parent / f"named-{next(_counter)}.toml"
+    spec.write_text(BASE_TEXT)
+    assert problems(["check", spec, "--set", item], capsys, store, cwd, [named, "--set"]) == []
+
+
 # -- found by the fuzzer, outside the spec checks ----------------------------------------------
 @pytest.mark.parametrize(
     "argv",
