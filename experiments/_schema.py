@@ -180,6 +180,7 @@ class CollectModel(_Model):
     ledger: bool = False
     metrics: list[str] | None = Field(default=None, min_length=1)
     totals: bool | None = None
+    meetings: bool = False
 
 
 class DesignModel(_Model):

@@ -122,6 +122,7 @@ class RunResult:
     traders: Any = None
     ledger: Any = None
     totals: Any = None
+    meetings: Any = None
     error_type: str | None = None
     error_message: str | None = None
     traceback: str | None = None
@@ -137,7 +138,7 @@ class RunResult:
 
     def _to_frames(self) -> RunResult:
         """Turn tables that arrived as column dicts into pandas DataFrames (in place)."""
-        for name in ("rounds", "traders", "ledger", "totals"):
+        for name in ("rounds", "traders", "ledger", "totals", "meetings"):
             table = getattr(self, name)
             if isinstance(table, dict):
                 import pandas as pd
@@ -155,6 +156,7 @@ def _market_config(plan: RunPlan) -> dict[str, Any]:
     # What is kept is decided by [collect]: the ledger costs memory and nothing reads it otherwise.
     market["keep_ledger"] = bool(collect.get("ledger", False))
     market["keep_totals"] = bool(collect.get("totals", False))
+    market["keep_meetings"] = bool(collect.get("meetings", False))
     config["market"] = market
     return config
 
@@ -208,10 +210,13 @@ def _run(plan: RunPlan) -> RunResult:
                 result.ledger = market.ledger_columns()
             if collect.get("totals", False):
                 result.totals = market.totals_columns()
+            if collect.get("meetings", False):
+                result.meetings = market.meetings_columns()
         except Exception as exc:  # a failing run is a result, not a crash of the sweep
             result.status = "failed"
             result.summary = {}
             result.rounds = result.traders = result.ledger = result.totals = None
+            result.meetings = None
             result.error_type = type(exc).__name__
             result.error_message = str(exc)
             result.traceback = _traceback.format_exc()

@@ -496,6 +496,8 @@ class Spec:
         collect = {k: self.collect[k] for k in ("rounds", "traders_every", "ledger")}
         if self.collect.get("totals"):  # only when kept: run ids of other specs stay as they were
             collect["totals"] = True
+        if self.collect.get("meetings"):
+            collect["meetings"] = True
         arms = self.arm_names or [""]
         plans = []
         for p, params in enumerate(self.points):
@@ -695,6 +697,7 @@ class _Builder:
             "ledger": c["ledger"],
             "metrics": metrics,
             "totals": any_interventions if c.get("totals") is None else c["totals"],
+            "meetings": c["meetings"],
         }
 
     def _market(self, m: dict, collect: dict) -> dict[str, Any]:

@@ -11,6 +11,7 @@ Layout of a folder::
     rounds/part-NNNNN.parquet   round tables of many runs each, with a ``run_id`` column
     traders/, ledger/      likewise, when the spec collects them
     totals/                each trader's surplus over the run with its groups (collect.totals)
+    meetings/              every meeting, traded or not (collect.meetings)
     comparison.csv         paired arm comparisons (written by ``propensim run`` / ``compare``)
 
 Crash safety. Every file is written whole to a temporary file in the same folder, flushed to disk
@@ -47,7 +48,7 @@ from typing import Any
 
 FORMAT = "propensim-results"
 FORMAT_VERSION = 1
-TABLES = ("rounds", "traders", "ledger", "totals")
+TABLES = ("rounds", "traders", "ledger", "totals", "meetings")
 PACKAGES = ("propensim", "numpy", "scipy", "mesa", "networkx", "pandas", "pyarrow")
 
 #: Columns of runs.parquet before the design parameters and after them (metrics come between).
@@ -782,6 +783,11 @@ class Results:
     def ledger(self):
         """Every kept trade of all stored runs."""
         return self._parts("ledger")
+
+    @cached_property
+    def meetings(self):
+        """Every recorded meeting (traded or not) of all stored runs."""
+        return self._parts("meetings")
 
     @cached_property
     def totals(self):

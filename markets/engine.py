@@ -84,6 +84,9 @@ class MarketEngine:
         :mod:`propensim.markets.schedule`); each draws from its own stream.
     keep_totals : bool
         Keep each trader's surplus over the run (for who-gains-and-who-loses comparisons).
+    keep_meetings : bool
+        Keep every meeting the clearing rule reports, traded or not (propensity matching
+        reports them), for calibration: see :meth:`meetings_columns`.
 
     """
 
@@ -101,6 +104,7 @@ class MarketEngine:
         keep_ledger: bool = True,
         interventions: Sequence = (),
         keep_totals: bool = False,
+        keep_meetings: bool = False,
     ) -> None:
         streams = spawn_streams(seed)
         if not isinstance(network, TradingNetwork):
@@ -123,6 +127,7 @@ class MarketEngine:
             traders_every=int(traders_every),
             keep_ledger=bool(keep_ledger),
             keep_totals=bool(keep_totals),
+            keep_meetings=bool(keep_meetings),
         )
         self._rng_clearing = streams["clearing"]
         self._rng_drift = streams["drift"]
@@ -302,6 +307,16 @@ class MarketEngine:
         import pandas as pd
 
         return pd.DataFrame(self.traders_columns())
+
+    def meetings_columns(self) -> dict[str, np.ndarray]:
+        """Every recorded meeting: round, buyer, seller, price (NaN if untraded), traded."""
+        return self.recorder.meetings_columns()
+
+    def meetings_frame(self):
+        """Every recorded meeting as a pandas DataFrame (see :meth:`meetings_columns`)."""
+        import pandas as pd
+
+        return pd.DataFrame(self.meetings_columns())
 
     def totals_columns(self) -> dict[str, np.ndarray]:
         """Each trader's surplus over the run with the columns that group traders.

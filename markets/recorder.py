@@ -30,6 +30,8 @@ class Recorder:
         Keep every trade.
     keep_totals : bool
         Accumulate each trader's surplus over the run (for who-gains-and-who-loses comparisons).
+    keep_meetings : bool
+        Keep every meeting the clearing rule reports, traded or not (for calibration).
     """
 
     def __init__(
@@ -39,8 +41,11 @@ class Recorder:
         traders_every: int = 0,
         keep_ledger: bool = True,
         keep_totals: bool = False,
+        keep_meetings: bool = False,
     ) -> None:
         self.metrics = metrics
+        self.keep_meetings = bool(keep_meetings)
+        self._meetings: list[tuple[int, tuple]] = []
         self.traders_every = int(traders_every)
         self.keep_ledger = bool(keep_ledger)
         self.keep_totals = bool(keep_totals)
@@ -90,7 +95,31 @@ class Recorder:
         np.add.at(self._units, t.buyer, q)
         np.add.at(self._units, t.seller, q)
 
+    def record_meetings(self, round_: int, parts: list) -> None:
+        """Keep the meetings a clearing rule reported this round (lists of column arrays)."""
+        for part in parts:
+            self._meetings.append((round_, part))
+
     # -- reading ---------------------------------------------------------------------------
+    def meetings_columns(self) -> dict[str, np.ndarray]:
+        """Every recorded meeting: round, buyer, seller, price (NaN if none), traded (0/1)."""
+        if not self._meetings:
+            return {
+                "round": np.zeros(0, np.int64),
+                "buyer": np.zeros(0, np.int64),
+                "seller": np.zeros(0, np.int64),
+                "price": np.zeros(0),
+                "traded": np.zeros(0, np.int64),
+            }
+        cols = list(zip(*(part for _, part in self._meetings), strict=True))
+        return {
+            "round": np.concatenate([np.full(len(p[0]), r) for r, p in self._meetings]),
+            "buyer": np.concatenate(cols[0]).astype(np.int64),
+            "seller": np.concatenate(cols[1]).astype(np.int64),
+            "price": np.concatenate(cols[2]).astype(float),
+            "traded": np.concatenate(cols[3]).astype(np.int64),
+        }
+
     @property
     def rows(self) -> list[dict[str, float]]:
         """The round rows kept so far (one dict per round)."""

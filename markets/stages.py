@@ -72,6 +72,7 @@ def clear(market) -> Trades:
     The shift is undone before anything else reads the population.
     """
     pop, state, rule = market.population, market.state, market.clearing
+    state.meetings = [] if market.recorder.keep_meetings else None
     wedge = market.policy.buyer_tax != 0.0 or market.policy.seller_tax != 0.0
     if wedge:
         saved_mu, saved_value = pop.mu.copy(), pop.value.copy()
@@ -174,6 +175,8 @@ def measure(market, outcome: RoundOutcome) -> dict[str, float]:
 def record(market, outcome: RoundOutcome, row: dict[str, float]) -> None:
     """Hand the round to the recorder and remember its mean price for the next round."""
     market.recorder.record(market.round, row, market.population, outcome)
+    if market.state.meetings:
+        market.recorder.record_meetings(market.round, market.state.meetings)
     trades = outcome.trades
     if len(trades):
         # Not np.dot: BLAS may wake its threads for long vectors (costly on a shared machine).

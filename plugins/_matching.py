@@ -177,6 +177,8 @@ def propensity_round(
     traded = u < peak if threshold is None else peak >= threshold  # shape: (k,) agreed
     hit = np.flatnonzero(traded)  # shape: (n_hit,) ascending
     if hit.size == 0:
+        if state.meetings is not None:
+            _report_meetings(state, rows, s, lonely, hit, np.zeros(0))
         return Trades.empty()
     n_rows = len(pop)
     turn = _turn_keys(hit, rows, meetings, rng)  # shape: (n_hit,)
@@ -242,8 +244,23 @@ def propensity_round(
     )
     take = hit if accepted.all() else hit[accepted]  # shape: (n_trades,)
     price = prices(take) if price is None else price[accepted]
+    if state.meetings is not None:
+        _report_meetings(state, rows, s, lonely, take, price)
     ones = np.ones(take.size, dtype=np.int64)
     return Trades(rows[take], s[take], price, ones, edge[take])
+
+
+def _report_meetings(state, rows, s, lonely, take, price) -> None:
+    """Hand every meeting of the round to the recorder: traded ones with their price."""
+    k = rows.size
+    traded = np.zeros(k, dtype=np.int64)
+    traded[take] = 1
+    at = np.full(k, np.nan)
+    at[take] = price
+    real = np.ones(k, dtype=bool)
+    if lonely is not None and lonely.size:
+        real[lonely] = False  # a buyer without partners met nobody
+    state.meetings.append((rows[real], s[real], at[real], traded[real]))
 
 
 def _joint_normal(pop: Population, b: np.ndarray, s: np.ndarray):

@@ -318,6 +318,11 @@ class MarketState:
     benchmark_surplus : float
         The largest achievable surplus per round of the market as it stood before any
         intervention (NaN until measured): the fixed benchmark of ``fixed_efficiency``.
+    meetings : list or None
+        When the market records meetings (``keep_meetings``), an empty list at the start of
+        each clearing, to which a rule may append ``(buyer, seller, price, traded)`` arrays:
+        every meeting it held, traded or not (price NaN where none was drawn). None otherwise:
+        a rule must then do no extra work or draws.
     """
 
     population: Population
@@ -331,6 +336,7 @@ class MarketState:
     price_floor: float = float("-inf")
     price_ceiling: float = float("inf")
     benchmark_surplus: float = float("nan")
+    meetings: list | None = None
 
     @property
     def price_bounded(self) -> bool:
