@@ -72,6 +72,19 @@ def test_open_backend_pool_serves_several_batches(tmp_path):
     assert backend._closed
 
 
+@pytest.mark.slow
+def test_open_backend_on_dask_serves_batches_and_tuning(tmp_path):
+    pytest.importorskip("distributed")
+    plans = load_spec(SPEC).runs()
+    expected = [run_one(p).summary for p in plans]
+    with open_backend(dask_local=1) as backend:
+        assert backend.kind == "dask"
+        assert [r.summary for r in backend.run(plans)] == expected
+        store = run_plans(plans, tmp_path / "d", backend=backend, progress=False)
+        assert store.counts()["ok"] == len(plans)
+        assert backend.run(plans[:1])[0].summary == expected[0]  # still open
+
+
 # -- parsing and bad input -----------------------------------------------------------------
 def test_parse():
     assert parse_target("price_sd=4.5") == ("price_sd", 4.5, None)
