@@ -217,6 +217,7 @@ class SpecModel(_Model):
     """A whole spec file."""
 
     experiment: ExperimentModel
+    plugins: list[str] = Field(default_factory=list)  # loaded first (local_plugins.py)
     population: PopulationModel
     network: PluginModel | None = None
     clearing: PluginModel | None = None

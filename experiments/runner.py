@@ -239,13 +239,25 @@ def run_batch(plans: Sequence[RunPlan]) -> list[RunResult]:
     return [run_one(p) for p in plans]
 
 
-def _run_batch(plans: Sequence[RunPlan]) -> list[RunResult]:
+def _run_batch(plans: Sequence[RunPlan], plugins: dict | None = None) -> list[RunResult]:
     """The unit of work sent to a worker: :func:`run_batch` with column-dict tables.
 
     A worker then never imports pandas (about 0.35 s of CPU at start-up, before the first run
     could begin); the sweep turns the tables into DataFrames when the results arrive.
+    ``plugins``: the spec's plugin modules and the session's plugins, imported once per worker
+    before its first run (:func:`propensim.experiments.local_plugins.payload`).
     """
+    if plugins:
+        from propensim.experiments.local_plugins import install
+
+        install(plugins)
     return [_run(p) for p in plans]
+
+
+def _plugin_payload(batch) -> tuple:
+    from propensim.experiments.local_plugins import payload
+
+    return payload(batch)
 
 
 # -- backends ------------------------------------------------------------------------------
@@ -312,7 +324,7 @@ class _LocalPool:
             raise
 
     def submit(self, batch):
-        return self._pool.submit(_run_batch, batch)
+        return self._pool.submit(_run_batch, batch, *_plugin_payload(batch))
 
     def wait_any(self, futures):
         from concurrent.futures import FIRST_COMPLETED, wait
@@ -448,7 +460,7 @@ class _Dask:
         self.n_workers = max(1, sum(self._client.nthreads().values()))
 
     def submit(self, batch):
-        return self._client.submit(_run_batch, list(batch), pure=False)
+        return self._client.submit(_run_batch, list(batch), *_plugin_payload(batch), pure=False)
 
     def wait_any(self, futures):
         import distributed
@@ -931,6 +943,10 @@ def run_plans(
             else:
                 backend = _backend(workers, scheduler, dask_local, len(todo))
             store.manifest["backend"] = backend.describe()
+            from propensim.experiments.local_plugins import manifest_entries
+
+            if used := manifest_entries(todo):  # the spec's plugin modules, by content
+                store.manifest["plugins"] = used
             _sweep(
                 backend,
                 todo,

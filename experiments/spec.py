@@ -529,9 +529,18 @@ class Spec:
         """The spec as plain data, every default filled in (writable with ``tomli_w``)."""
         return copy.deepcopy(self._resolved)
 
+    #: The plugin modules the spec's ``plugins`` loaded (local_plugins.PluginSource each).
+    plugin_sources: tuple = ()
+
     def fingerprint(self) -> str:
-        """SHA-256 of the canonical JSON of :meth:`resolved`: changes when any setting does."""
-        return hashlib.sha256(canonical_json(self._resolved).encode()).hexdigest()
+        """SHA-256 of the canonical JSON of :meth:`resolved`: changes when any setting does.
+
+        Plugin modules count by file name and content (SHA-256), not by where they are.
+        """
+        doc = self._resolved
+        if self.plugin_sources:
+            doc = {**doc, "plugins": [rec.config_entry() for rec in self.plugin_sources]}
+        return hashlib.sha256(canonical_json(doc).encode()).hexdigest()
 
     def to_toml(self) -> str:
         """The resolved spec as TOML text (loads back to the same fingerprint)."""
@@ -569,6 +578,7 @@ class _Builder:
     # -- the whole spec ------------------------------------------------------------------------
     def build(self) -> Spec:
         raw = self.raw
+        plugin_sources = self._plugins(raw)  # first: they register names the rest may use
         try:
             model = SpecModel.model_validate(raw)
         except ValidationError as exc:
@@ -629,6 +639,8 @@ class _Builder:
                 cfg["metrics"] = list(collect["metrics"])
                 if inputs := self._inputs(cfg):  # file contents enter the run ids
                     cfg["inputs"] = inputs
+                if plugin_sources:  # their source hashes enter every run id
+                    cfg["plugins"] = [rec.config_entry() for rec in plugin_sources]
                 items = [*top, *(per_arm[a] if arms else [])]
                 if items:
                     cfg["interventions"] = items
@@ -657,7 +669,30 @@ class _Builder:
             ]
         if compare is not None:
             resolved["compare"] = compare
-        return Spec(_plain(resolved), points, configs, None)
+        if plugin_sources:
+            resolved = {"plugins": [rec.entry for rec in plugin_sources], **resolved}
+        spec = Spec(_plain(resolved), points, configs, None)
+        spec.plugin_sources = tuple(plugin_sources)
+        return spec
+
+    def _plugins(self, raw: dict) -> list:
+        """Import the modules in ``plugins`` (paths relative to the spec file)."""
+        entries = raw.get("plugins")
+        if entries is None:
+            return []
+        if not isinstance(entries, list):
+            raise self.error(
+                ("plugins",),
+                "must be a list of files (ending in .py) or module names, e.g. plugins = "
+                '["my_rules.py"]',
+            )
+        from propensim.experiments.local_plugins import LocalPluginError, load_plugins
+
+        try:
+            return load_plugins(entries, Path(self.file).parent if self.file else None)
+        except LocalPluginError as exc:
+            problem = str(exc).split(": ", 1)[-1]
+            raise self.error(("plugins", exc.index), problem) from None
 
     # -- sections ------------------------------------------------------------------------------
     def _collect(self, m: dict) -> dict[str, Any]:

@@ -30,6 +30,13 @@ class _Entry:
     target: str  # "module:attr", or "" for runtime registrations
     obj: Any = None
     broken: bool = False
+    package: str = ""  # " (package NAME)" for an entry point, for warnings
+
+
+def _package(ep) -> str:
+    dist = getattr(ep, "dist", None)
+    name = getattr(dist, "name", None) if dist is not None else None
+    return f" (package {name})" if name else ""
 
 
 _TABLE: dict[str, dict[str, _Entry]] | None = None
@@ -45,13 +52,14 @@ def _table() -> dict[str, dict[str, _Entry]]:
                 if known is not None:
                     if known.target != ep.value:
                         warnings.warn(
-                            f"propensim: duplicate {kind} plugin {ep.name!r} from {ep.value} "
-                            f"skipped; {known.target} keeps the name",
+                            f"propensim: duplicate {kind} plugin {ep.name!r} from {ep.value}"
+                            f"{_package(ep)} skipped; {known.target}{known.package} keeps the "
+                            "name",
                             RuntimeWarning,
                             stacklevel=2,
                         )
                     continue
-                table[kind][ep.name] = _Entry(ep.name, ep.value)
+                table[kind][ep.name] = _Entry(ep.name, ep.value, package=_package(ep))
         _TABLE = table
     return _TABLE
 
@@ -185,6 +193,20 @@ def register(kind: str, name: str | None = None, *, replace: bool = False):
         return obj
 
     return deco
+
+
+def runtime_plugins() -> list[tuple[str, str, Any]]:
+    """``(kind, name, obj)`` of every plugin registered at run time with :func:`register`.
+
+    Worker processes do not see these (they start from the entry points alone), so the runner
+    ships them, or refuses them, before a sweep starts (``propensim.experiments.local_plugins``).
+    """
+    return [
+        (kind, entry.name, entry.obj)
+        for kind, table in _table().items()
+        for entry in table.values()
+        if not entry.target and entry.obj is not None
+    ]
 
 
 def unregister(kind: str, name: str) -> None:
