@@ -26,7 +26,16 @@ from propensim.plugins._matching import RowAgent, run_per_agent
 from propensim.plugins.trade_checks import CASH_RTOL, check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
-__all__ = ["check_clearing_rule", "check_drift_rule", "check_metric", "kit_markets"]
+__all__ = [
+    "KitMarket",
+    "check_clearing_rule",
+    "check_curve_family",
+    "check_drift_rule",
+    "check_intervention",
+    "check_metric",
+    "check_network_builder",
+    "kit_markets",
+]
 
 AGGREGATES = ("mean", "sum", "last", "final_half_mean")
 
@@ -380,3 +389,451 @@ def check_metric(
             again = float(metric.measure(state, outcome))
             if not (value == again or (np.isnan(value) and np.isnan(again))):
                 raise fail("deterministic", where, f"{value!r} then {again!r}")
+
+
+# -- network builders -----------------------------------------------------------------------
+def _global_random_state():
+    import random
+
+    # the legacy global state is what a plugin must not touch: read it, never draw from it
+    return np.random.get_state()[1].tobytes(), random.getstate()  # noqa: NPY002
+
+
+def _kit_roles(seed: int) -> dict[str, np.ndarray]:
+    """Role arrays the network kit builds on: buyers first, shuffled, lopsided, tiny."""
+    rng = np.random.default_rng(seed)
+    shuffled = np.array([0] * 12 + [1] * 9, dtype=np.int8)
+    rng.shuffle(shuffled)
+    return {
+        "buyers first": np.array([0] * 15 + [1] * 15, dtype=np.int8),
+        "shuffled roles": shuffled,
+        "one seller": np.array([0] * 6 + [1], dtype=np.int8),
+        "one of each": np.array([1, 0], dtype=np.int8),
+    }
+
+
+def check_network_builder(builder, *, seeds: Iterable[int] = range(3)) -> dict[str, int]:
+    """Assert the NetworkBuilder contract on several role arrays and seeds.
+
+    ``build(role, rng)`` must return a :class:`~propensim.plugins.types.TradingNetwork` over
+    ``len(role)`` rows whose edges join a buyer (role 0) to a seller (role 1) and name rows
+    ``0..n-1``, with no self-loops or duplicate edges (trading or social); leave ``role``
+    unchanged; give the same network for the same generator state; and draw nothing from the
+    global random state (``numpy.random``, ``random``). On the two tiny role arrays (7 and 2
+    traders) a builder may instead refuse with ``ValueError``.
+
+    Returns
+    -------
+    dict
+        Edges built per role scenario over all seeds (lets a test check it built some).
+
+    Raises
+    ------
+    AssertionError
+        Naming the invariant, the scenario, the seed and the offending edge.
+    """
+    fail = _Fail(builder)
+    _check_metadata(builder, fail)
+    if not callable(getattr(builder, "build", None)):
+        raise fail("contract", "class", "needs build(role, rng)")
+    edges: dict[str, int] = {}
+    for seed in seeds:
+        for scenario, role in _kit_roles(int(seed)).items():
+            where = f"scenario {scenario!r}, seed {seed}"
+            n = role.size
+            role_before = role.copy()
+            state = _global_random_state()
+            try:
+                net = builder.build(role, np.random.default_rng(seed))
+            except ValueError:
+                if n >= 20:
+                    raise
+                continue  # a builder may refuse a market too small for it, with a ValueError
+            if _global_random_state() != state:
+                raise fail("draws only from rng", where, "the global random state changed")
+            if not np.array_equal(role, role_before):
+                raise fail("role is read-only", where, "the role array changed")
+            if not isinstance(net, TradingNetwork):
+                raise fail("returns a TradingNetwork", where, f"got {type(net).__name__}")
+            if net.n != n:
+                raise fail("same rows", where, f"network has n={net.n}, role has {n} rows")
+            b, s = np.asarray(net.buyer), np.asarray(net.seller)
+            outside = (b < 0) | (b >= n) | (s < 0) | (s >= n)  # shape: (n_edges,)
+            if outside.any():
+                i = int(np.flatnonzero(outside)[0])
+                raise fail("rows exist", where, f"edge {i} ({b[i]}, {s[i]}) outside 0..{n - 1}")
+            loop = b == s
+            if loop.any():
+                i = int(np.flatnonzero(loop)[0])
+                raise fail("no self-loops", where, f"edge {i} joins trader {b[i]} to itself")
+            wrong = (role[b] != 0) | (role[s] != 1)
+            if wrong.any():
+                i = int(np.flatnonzero(wrong)[0])
+                raise fail(
+                    "edges only between buyers and sellers",
+                    where,
+                    f"edge {i} ({b[i]}, {s[i]}) joins roles {role[b[i]]} and {role[s[i]]}",
+                )
+            key = b * np.int64(n) + s
+            if np.unique(key).size != key.size:
+                raise fail("no duplicate edges", where, "a buyer-seller pair appears twice")
+            u, v = (np.asarray(x) for x in net.social)
+            if (u == v).any():
+                i = int(np.flatnonzero(u == v)[0])
+                raise fail("no self-loops", where, f"social edge {i} joins {u[i]} to itself")
+            if np.unique(u * np.int64(n) + v).size != u.size:
+                raise fail("no duplicate edges", where, "a social edge (u, v) appears twice")
+            again = builder.build(role.copy(), np.random.default_rng(seed))
+            if not (
+                isinstance(again, TradingNetwork)
+                and np.array_equal(again.buyer, b)
+                and np.array_equal(again.seller, s)
+            ):
+                raise fail("same generator state gives the same network", where, "edges differ")
+            edges[scenario] = edges.get(scenario, 0) + int(b.size)
+    return edges
+
+
+# -- curve families ---------------------------------------------------------------------------
+def check_curve_family(
+    family, *, params: dict | None = None, seeds: Iterable[int] = range(3), n: int = 12
+) -> None:
+    """Assert the CurveFamily contract on batches built from random population columns.
+
+    ``family`` is the class (or an instance: its class is used); ``params`` are the extra
+    keyword arguments of ``from_population``. Asserted, on prices from far below to far above
+    every curve: ``value`` in [0, 1] with the batch's shape; ``log_value`` finite where the
+    value is positive and ``exp(log_value) == value``; ``force(x, gamma) = gamma d ln P/dx``
+    (central finite differences); ``energy(x0, x1, gamma) = -gamma (ln P(x1) - ln P(x0))``;
+    the population columns unchanged; the same numbers on a second call.
+
+    Raises
+    ------
+    AssertionError
+        Naming the invariant, the seed, and the price and curve where it failed.
+    """
+    cls = family if isinstance(family, type) else type(family)
+    fail = _Fail(cls)
+    fail.name = cls.__name__
+    desc = getattr(cls, "description", None)
+    if not isinstance(desc, str) or not desc.strip() or "\n" in desc.strip():
+        raise fail("description", "class", f"needs a one-line string 'description', got {desc!r}")
+    for name in ("from_population", "value", "log_value", "force", "energy"):
+        if not callable(getattr(cls, name, None)):
+            raise fail("contract", "class", f"needs {name}()")
+    params = dict(params or {})
+    for seed in seeds:
+        rng = np.random.default_rng(seed)
+        mu = rng.uniform(80.0, 120.0, n)
+        sigma = rng.uniform(2.0, 10.0, n)
+        activity = rng.uniform(0.3, 1.0, n)
+        role = (np.arange(n) % 2).astype(np.int8)
+        gamma = rng.uniform(0.5, 2.0, n)
+        columns = [mu.copy(), sigma.copy(), activity.copy(), role.copy()]
+        curves = cls.from_population(mu, sigma, activity, role, **params)
+        for got, old, name in zip(
+            (mu, sigma, activity, role), columns, ("mu", "sigma", "activity", "role"), strict=True
+        ):
+            if not np.array_equal(got, old):
+                raise fail("inputs are read-only", f"seed {seed}", f"{name} changed")
+        # shape: (n_prices, n): each curve at prices from 12 widths below to 12 above its mu
+        # offset from round numbers: piecewise families have kinks there
+        z = np.concatenate([np.linspace(-12.0, 12.0, 97) + 0.0123, rng.uniform(-4.0, 4.0, 40)])
+        x = mu[None, :] + z[:, None] * sigma[None, :]
+        where = f"seed {seed}"
+        value = np.asarray(curves.value(x))
+        if value.shape != x.shape:
+            raise fail("vectorised", where, f"value(x) has shape {value.shape}, x {x.shape}")
+        bad = ~((value >= 0.0) & (value <= 1.0))
+        if bad.any():
+            i, j = np.argwhere(bad)[0]
+            raise fail(
+                "values in [0, 1]", where, f"P({x[i, j]:.6g}) = {value[i, j]!r} for curve {j}"
+            )
+        log_value = np.asarray(curves.log_value(x))
+        positive = value > 1e-300
+        if not np.all(np.isfinite(log_value[positive])):
+            raise fail("log_value finite", where, "log_value is not finite where P > 0")
+        off = positive & ~np.isclose(np.exp(log_value), value, rtol=1e-7, atol=1e-12)
+        if off.any():
+            i, j = np.argwhere(off)[0]
+            raise fail(
+                "log_value consistent",
+                where,
+                f"exp(log_value({x[i, j]:.6g})) = {np.exp(log_value[i, j]):.10g} but "
+                f"value = {value[i, j]:.10g} (curve {j})",
+            )
+        # central differences, step 1e-5 widths: error O(h^2) of the curvature (common practice)
+        h = 1e-5 * sigma[None, :]
+        up, down = curves.log_value(x + h), curves.log_value(x - h)
+        inside = (np.minimum(up, down) > -30.0) & (log_value > -30.0)  # ln P well resolved
+        with np.errstate(invalid="ignore"):
+            numeric = gamma * (up - down) / (2.0 * h)
+        force = np.asarray(curves.force(x, gamma))
+        scale = np.max(np.abs(numeric[inside]), initial=1.0)
+        off = inside & ~np.isclose(force, numeric, rtol=1e-4, atol=1e-5 * scale)
+        if off.any():
+            i, j = np.argwhere(off)[0]
+            raise fail(
+                "force = gamma d ln P/dx",
+                where,
+                f"force({x[i, j]:.6g}) = {force[i, j]:.8g}, finite differences give "
+                f"{numeric[i, j]:.8g} (curve {j})",
+            )
+        x0, x1 = x[40], x[60]
+        energy = np.asarray(curves.energy(x0, x1, gamma))
+        expected = -gamma * (curves.log_value(x1) - curves.log_value(x0))
+        ok = np.isfinite(expected)
+        if not np.allclose(energy[ok], expected[ok], rtol=1e-9, atol=1e-9):
+            raise fail("energy = -gamma (ln P(x1) - ln P(x0))", where, "energy differs")
+        if not np.array_equal(np.asarray(curves.value(x)), value, equal_nan=True):
+            raise fail("deterministic", where, "value(x) differs on a second call")
+
+
+# -- interventions ----------------------------------------------------------------------------
+class _KitPolicy:
+    def __init__(self) -> None:
+        self.floor = -np.inf
+        self.ceiling = np.inf
+        self.buyer_tax = 0.0
+        self.seller_tax = 0.0
+
+    def as_tuple(self) -> tuple[float, float, float, float]:
+        return (self.floor, self.ceiling, self.buyer_tax, self.seller_tax)
+
+
+class _KitSchedule:
+    """The interventions of the kit's market (each check puts the one under test here)."""
+
+    def __init__(self) -> None:
+        self.interventions: list = []
+
+
+class KitMarket:
+    """A stand-in market with the methods an intervention may call, recording each call.
+
+    Attributes ``population``, ``network``, ``clearing``, ``policy`` (``floor``, ``ceiling``,
+    ``buyer_tax``, ``seller_tax``), ``round``, ``present`` (bool per row); methods
+    ``remove_traders``, ``restore_traders``, ``replace_network``, ``replace_population`` and
+    ``replace_clearing`` as on :class:`~propensim.markets.engine.MarketEngine`; ``schedule.
+    interventions`` (the intervention under test). ``calls`` lists the method names called.
+    """
+
+    def __init__(self, population: Population, network: TradingNetwork, clearing=None) -> None:
+        self.population = population
+        self.network = network
+        self.clearing = clearing
+        self.policy = _KitPolicy()
+        self.round = 0
+        self.present = np.ones(len(population), dtype=bool)
+        self.calls: list[str] = []
+        self.schedule = _KitSchedule()
+
+    def replace_network(self, network: TradingNetwork) -> None:
+        """Put a new network in place."""
+        self.calls.append("replace_network")
+        if not isinstance(network, TradingNetwork) or network.n != len(self.population):
+            raise ValueError("replace_network needs a TradingNetwork over the same rows")
+        self.network = network
+
+    def replace_population(self, population: Population, network=None) -> None:
+        """Put a new population (same rows first, same roles) and optionally a network."""
+        self.calls.append("replace_population")
+        old_n = len(self.population)
+        network = self.network if network is None else network
+        if len(population) < old_n or network.n != len(population):
+            raise ValueError("replace_population: rows may only be appended, network over them")
+        if np.any(population.role[:old_n] != self.population.role):
+            raise ValueError("replace_population must keep every existing trader's role")
+        extra = len(population) - old_n
+        self.present = np.concatenate([self.present, np.ones(extra, dtype=bool)])
+        self.population, self.network = population, network
+
+    def replace_clearing(self, rule) -> None:
+        """Clear with ``rule`` from now on."""
+        self.calls.append("replace_clearing")
+        self.clearing = rule
+
+    def remove_traders(self, rows) -> None:
+        """Cut every edge of ``rows``."""
+        self.calls.append("remove_traders")
+        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
+        gone = np.zeros(len(self.population), dtype=bool)
+        gone[rows] = True
+        self.present &= ~gone
+        net = self.network
+        self.network = net.keep_edges(~(gone[net.buyer] | gone[net.seller]))
+
+    def restore_traders(self, rows, network: TradingNetwork) -> None:
+        """Bring ``rows`` back with ``network``."""
+        self.calls.append("restore_traders")
+        self.present[np.asarray(rows, dtype=np.int64)] = True
+        self.network = network
+
+
+def _kit_market(seed: int, clearing=None) -> KitMarket:
+    pop, net = kit_markets(seed, 20, 20)["sparse"]
+    region = np.random.default_rng(seed + 101).integers(0, 3, len(pop))
+    net = TradingNetwork(net.n, net.buyer, net.seller, attributes={"region": region})
+    return KitMarket(pop, net, clearing)
+
+
+def _snapshot(market: KitMarket):
+    net = market.network
+    return (
+        _columns(market.population),
+        (net.n, net.buyer.copy(), net.seller.copy()),
+        market.policy.as_tuple(),
+        market.clearing,
+        len(market.population),
+    )
+
+
+def _policy_ok(policy) -> str | None:
+    floor, ceiling, bt, st = (float(v) for v in policy.as_tuple())
+    if np.isnan(floor) or np.isnan(ceiling) or floor > ceiling:
+        return f"price bounds [{floor}, {ceiling}] are not an interval"
+    if not (np.isfinite(bt) and np.isfinite(st)):
+        return f"taxes must be finite, got buyer_tax={bt}, seller_tax={st}"
+    return None
+
+
+def check_intervention(
+    intervention, *, seeds: Iterable[int] = range(3), clearing=None, market_factory=None
+) -> None:
+    """Assert the Intervention contract on a stand-in market (:class:`KitMarket`).
+
+    Asserted: ``description`` is one line; ``start`` is a whole number >= 0 and ``until``
+    None or after it; ``validate(market)`` (if any) accepts the kit's market; ``begin`` and
+    ``end`` change the market only through its methods (a changed population needs
+    ``replace_population``, a changed network one of ``replace_network``,
+    ``replace_population``, ``remove_traders``, ``restore_traders``; a new clearing rule
+    ``replace_clearing``); afterwards every edge still joins a buyer to a seller, the roles of
+    existing rows are kept, ``sigma > 0`` and ``mu`` finite, stock never negative, the price
+    policy is an interval with finite taxes; the same generator state gives the same market; no
+    draw from the global random state.
+
+    Parameters
+    ----------
+    intervention
+        The instance (its ``until`` may be None).
+    seeds : iterable of int
+        One kit market per seed.
+    clearing : optional
+        The market's clearing rule (for interventions that read or switch it).
+    market_factory : callable, optional
+        ``seed -> KitMarket``: a market of your own (for example with network attributes).
+
+    Raises
+    ------
+    AssertionError
+        Naming the invariant and the seed.
+    """
+    fail = _Fail(intervention)
+    _check_metadata(intervention, fail)
+    if not callable(getattr(intervention, "begin", None)):
+        raise fail("contract", "class", "needs begin(market, rng)")
+    start = getattr(intervention, "start", 0)
+    until = getattr(intervention, "until", None)
+    if isinstance(start, bool) or not isinstance(start, int | np.integer) or start < 0:
+        raise fail("window", "class", f"start must be a whole number >= 0, got {start!r}")
+    if until is not None and (
+        isinstance(until, bool) or not isinstance(until, int | np.integer) or until <= start
+    ):
+        raise fail("window", "class", f"until must be None or after start, got {until!r}")
+    make = market_factory or (lambda s: _kit_market(s, clearing))
+    for seed in seeds:
+        results = []
+        for _attempt in range(2):
+            market = make(int(seed))
+            market.schedule.interventions = [intervention]
+            validate = getattr(intervention, "validate", None)
+            where = f"seed {seed}"
+            if callable(validate):
+                try:
+                    validate(market)
+                except ValueError as exc:
+                    raise fail(
+                        "validate accepts the kit market", where, f"{exc} (pass market_factory=)"
+                    ) from exc
+            rng = np.random.default_rng([int(seed), 17])
+            hooks = [("begin", intervention.begin)]
+            if callable(getattr(intervention, "end", None)):
+                hooks.append(("end", intervention.end))
+            for hook, call in hooks:
+                where = f"seed {seed}, {hook}"
+                before = _snapshot(market)
+                market.calls.clear()
+                state = _global_random_state()
+                market.round = start if hook == "begin" else (until or start + 1)
+                call(market, rng)
+                if _global_random_state() != state:
+                    raise fail("draws only from rng", where, "the global random state changed")
+                _check_changes(market, before, fail, where)
+            net, pop = market.network, market.population
+            results.append(
+                (_columns(pop), net.buyer.copy(), net.seller.copy(), market.policy.as_tuple())
+            )
+        (cols_a, b_a, s_a, pol_a), (cols_b, b_b, s_b, pol_b) = results
+        same = (
+            np.array_equal(b_a, b_b)
+            and np.array_equal(s_a, s_b)
+            and pol_a == pol_b
+            and cols_a.keys() == cols_b.keys()
+            and all(np.array_equal(cols_a[k], cols_b[k], equal_nan=True) for k in cols_a)
+        )
+        if not same:
+            raise fail(
+                "same generator state gives the same market", f"seed {seed}", "results differ"
+            )
+
+
+def _check_changes(market: KitMarket, before, fail: _Fail, where: str) -> None:
+    cols, (n0, b0, s0), policy0, clearing0, rows0 = before
+    calls = set(market.calls)
+    pop, net = market.population, market.network
+    now = _columns(pop)
+    changed = [
+        k
+        for k, old in cols.items()
+        if k in now and (now[k].shape != old.shape or not np.array_equal(now[k], old, True))
+    ]
+    if changed and "replace_population" not in calls:
+        raise fail(
+            "changes the market only through its methods",
+            where,
+            f"population column {changed[0]!r} changed without market.replace_population",
+        )
+    net_changed = net.n != n0 or not (
+        np.array_equal(net.buyer, b0) and np.array_equal(net.seller, s0)
+    )
+    by_methods = {"replace_network", "replace_population", "remove_traders", "restore_traders"}
+    if net_changed and not (calls & by_methods):
+        raise fail(
+            "changes the market only through its methods",
+            where,
+            "the network changed without market.replace_network",
+        )
+    if market.clearing is not clearing0 and "replace_clearing" not in calls:
+        raise fail(
+            "changes the market only through its methods",
+            where,
+            "market.clearing changed without market.replace_clearing",
+        )
+    if len(pop) < rows0:
+        raise fail("rows are kept", where, f"{rows0} traders became {len(pop)}")
+    if not np.array_equal(pop.role[:rows0], cols["role"]):
+        raise fail("roles are kept", where, "an existing trader changed role")
+    wrong = (pop.role[net.buyer] != 0) | (pop.role[net.seller] != 1)
+    if wrong.any():
+        i = int(np.flatnonzero(wrong)[0])
+        raise fail(
+            "edges only between buyers and sellers",
+            where,
+            f"edge {i} ({net.buyer[i]}, {net.seller[i]}) after the intervention",
+        )
+    if not (np.all(np.isfinite(pop.mu)) and np.all(pop.sigma > 0) and np.all(pop.stock >= 0)):
+        raise fail("population valid", where, "mu not finite, sigma <= 0 or stock < 0")
+    problem = _policy_ok(market.policy)
+    if problem:
+        raise fail("price policy valid", where, problem)
