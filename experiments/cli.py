@@ -34,6 +34,8 @@ _INPUT_ERRORS = {
     "propensim.experiments.calibrate_base": "CalibrationError",
     "propensim.experiments.report": "ReportError",
     "propensim.experiments.sensitivity": "SensitivityError",
+    "propensim.experiments.new_plugin": "NewPluginError",
+    "propensim.experiments.local_plugins": "LocalPluginError",
 }
 
 
@@ -125,6 +127,11 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("sql", help='e.g. "SELECT arm, avg(efficiency) FROM runs GROUP BY arm"')
 
     sub.add_parser("plugins", help="list every registered plugin by kind")
+    q = sub.add_parser("new-plugin", help="write an installable package holding a new plugin")
+    q.add_argument("kind", metavar="KIND", help="clearing, drift, metrics, networks, curves, ...")
+    q.add_argument("name", metavar="NAME", help="a Python identifier: package and plugin name")
+    q.add_argument("--per-agent", action="store_true", help="clearing/drift: trader by trader")
+    q.add_argument("--dir", help="the folder to create (default: ./NAME; must not exist)")
 
     q = sub.add_parser("demo", help="run the shipped demo experiment (growers and kitchens)")
     q.add_argument("--out", help="results folder (default ./results/<demo name>)")
@@ -716,6 +723,17 @@ def _float_arg(text: str) -> float:
         ) from None
 
 
+def cmd_new_plugin(args) -> int:
+    """``propensim new-plugin``."""
+    from propensim.experiments.new_plugin import new_plugin
+
+    folder = new_plugin(args.kind, args.name, per_agent=args.per_agent, directory=args.dir)
+    print(f"written: {folder}/ ({args.kind} plugin {args.name!r})")
+    print(f"next: cd {folder} && pip install -e . && pytest && propensim plugins")
+    print("after changing its entry points in pyproject.toml, run pip install -e . again")
+    return 0
+
+
 COMMANDS = {
     "calibrate": cmd_calibrate,
     "acceptance": cmd_acceptance,
@@ -725,6 +743,7 @@ COMMANDS = {
     "compare": cmd_compare,
     "query": cmd_query,
     "plugins": cmd_plugins,
+    "new-plugin": cmd_new_plugin,
     "demo": cmd_demo,
     "pair": cmd_pair,
     "report": cmd_report,
