@@ -448,6 +448,10 @@ class _Dask:
                         dashboard_address=None,
                     )
                 self._client = distributed.Client(self._cluster)
+                # our own workers write to our stderr: only errors, not the warnings of a
+                # cancelled task when a sweep is interrupted; and Ctrl-C (sent to the whole
+                # process group) is for this process to handle, which then closes them
+                self._client.run(_quiet_dask_worker)
             else:
                 self._client = distributed.Client(scheduler)
         except (OSError, TimeoutError) as exc:
@@ -468,6 +472,8 @@ class _Dask:
         return list(distributed.wait(futures, return_when="FIRST_COMPLETED").done)
 
     def close(self, cancel: bool = False) -> None:
+        if cancel:  # interrupted or stopped: end as quietly as the pool, one line of our own
+            _quiet_dask_logs()
         try:
             self._client.close()
         finally:
@@ -477,6 +483,24 @@ class _Dask:
     def describe(self) -> dict[str, Any]:
         kind = "dask-local" if self._cluster is not None else "dask"
         return {"kind": kind, "workers": self.n_workers, "scheduler": self.scheduler}
+
+
+def _quiet_dask_logs() -> None:
+    """Log only errors from distributed (and tornado) in this process, from now on."""
+    import logging
+
+    for name in ("distributed", "tornado"):
+        logging.getLogger(name).setLevel(logging.ERROR)
+
+
+def _quiet_dask_worker() -> None:
+    """On a worker of our local cluster: errors only, and leave Ctrl-C to the sweep."""
+    import signal
+    import threading
+
+    _quiet_dask_logs()
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def available_cpus() -> int:
@@ -668,11 +692,44 @@ class _Batcher:
 
 
 class _Progress:
-    """A rich progress bar on stderr (ETA, done and failed counts), or nothing."""
+    """Progress of a sweep on stderr: a rich bar on a terminal, plain lines elsewhere, or nothing.
 
-    def __init__(self, enabled: bool, total: int, label: str) -> None:
+    ``total`` counts every run of the experiment and ``done`` those already stored (a resumed
+    or grown sweep starts there, and says so). Plain lines (batch jobs, logs) come every
+    ``interval`` seconds from a background thread, so the elapsed clock ticks between runs too:
+    ``propensim: NAME: 12/48 runs done, 0 failed, elapsed 0:00:30, ETA 0:01:30``.
+    """
+
+    def __init__(
+        self,
+        enabled: bool,
+        total: int,
+        label: str,
+        *,
+        done: int = 0,
+        plain: bool = False,
+        interval: float | None = None,
+    ) -> None:
+        import threading
+
         self._bar = None
+        self._thread = None
         self.failed = 0
+        self.total, self.done, self.already, self.label = total, done, done, label
+        self.lines = 0
+        self._t0 = time.monotonic()
+        self._stop = threading.Event()
+        if plain and not enabled:
+            self.interval = progress_interval() if interval is None else float(interval)
+            if done:
+                self._line(
+                    f"resuming: {done} of {total} runs already stored, {total - done} to run"
+                )
+            self._thread = threading.Thread(
+                target=self._tick, name="propensim-progress", daemon=True
+            )
+            self._thread.start()
+            return
         if not enabled:
             return
         from rich.console import Console
@@ -695,17 +752,58 @@ class _Progress:
             TimeRemainingColumn(),
             console=Console(stderr=True),
         )
-        self._task = self._bar.add_task(label, total=total, failed=0)
+        text = f"{label} ({done} already stored)" if done else label
+        self._task = self._bar.add_task(text, total=total, completed=done, failed=0)
         self._bar.start()
+
+    @staticmethod
+    def _clock(seconds: float) -> str:
+        s = int(round(seconds))
+        return f"{s // 3600}:{s // 60 % 60:02d}:{s % 60:02d}"
+
+    def _line(self, text: str) -> None:
+        print(f"propensim: {self.label}: {text}", file=sys.stderr, flush=True)
+        self.lines += 1
+
+    def status(self) -> str:
+        """``12/48 runs done, 0 failed, elapsed 0:00:30, ETA 0:01:30`` (ETA from this session)."""
+        elapsed = time.monotonic() - self._t0
+        new = self.done - self.already
+        left = self.total - self.done
+        eta = self._clock(elapsed / new * left) if new > 0 else "unknown"
+        return (
+            f"{self.done}/{self.total} runs done, {self.failed} failed, "
+            f"elapsed {self._clock(elapsed)}, ETA {eta if left else '0:00:00'}"
+        )
+
+    def _tick(self) -> None:
+        while not self._stop.wait(self.interval):
+            self._line(self.status())
 
     def advance(self, n: int, failed: int) -> None:
         self.failed += failed
+        self.done += n
         if self._bar is not None:
             self._bar.update(self._task, advance=n, failed=self.failed)
 
     def close(self) -> None:
+        if self._thread is not None:
+            self._stop.set()
+            self._thread.join()
+            self._thread = None
+            if self.lines:
+                self._line(self.status())
         if self._bar is not None:
             self._bar.stop()
+
+
+def progress_interval() -> float:
+    """Seconds between plain progress lines: ``PROPENSIM_PROGRESS_SECONDS``, default 30."""
+    try:
+        value = float(os.environ.get("PROPENSIM_PROGRESS_SECONDS", "30"))
+    except ValueError:
+        return 30.0
+    return value if value > 0 else 30.0
 
 
 def show_progress() -> bool:
@@ -935,7 +1033,10 @@ def run_plans(
     backend = None
     status = "complete"
     enabled = (show_progress() if progress is None else bool(progress)) and bool(todo)
-    bar = _Progress(enabled, pending_rows, name)
+    # Not a terminal (a batch job, a log file): plain lines at a steady interval instead.
+    plain = progress is None and not enabled and bool(todo)
+    done = len(plans) - pending_rows
+    bar = _Progress(enabled, len(plans), name, done=done, plain=plain)
     try:
         if todo:
             if shared is not None:
