@@ -396,7 +396,8 @@ def _global_random_state():
     import random
 
     # the legacy global state is what a plugin must not touch: read it, never draw from it
-    return np.random.get_state()[1].tobytes(), random.getstate()  # noqa: NPY002
+    legacy = np.random.get_state()  # noqa: NPY002
+    return legacy[1].tobytes(), legacy[2:], random.getstate()
 
 
 def _kit_roles(seed: int) -> dict[str, np.ndarray]:
@@ -548,7 +549,9 @@ def check_curve_family(
         if bad.any():
             i, j = np.argwhere(bad)[0]
             raise fail(
-                "values in [0, 1]", where, f"P({x[i, j]:.6g}) = {value[i, j]!r} for curve {j}"
+                "values in [0, 1]",
+                where,
+                f"P({x[i, j]:.6g}) = {float(value[i, j])!r} for curve {j}",
             )
         log_value = np.asarray(curves.log_value(x))
         positive = value > 1e-300
