@@ -16,6 +16,7 @@ from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validat
 PLUGIN_KINDS = {"network": "networks", "clearing": "clearing", "drift": "drift"}
 _NAME_PATTERN = r"^[A-Za-z0-9_-]+$"
 _DISTRIBUTIONS = ("uniform", "normal", "lognormal", "linspace")
+_INT64_MAX = 2**63 - 1
 
 
 def _is_number(x: Any) -> bool:
@@ -77,8 +78,8 @@ class PopulationModel(_Model):
     activity: _Dist | None = None
     gamma: _Dist | None = None
     cash: _Dist | None = None
-    stock: int | None = Field(default=None, ge=0)
-    capacity: int | None = Field(default=None, ge=0)
+    stock: int | None = Field(default=None, ge=0, le=_INT64_MAX)  # stored as int64 arrays
+    capacity: int | None = Field(default=None, ge=0, le=_INT64_MAX)
     curve: str | None = None
     curve_params: dict[str, Any] | None = None
 
@@ -254,7 +255,7 @@ def _model_at(path: Sequence) -> type[BaseModel] | None:
 
 def _unwrap(ann: Any) -> Any:
     origin = get_origin(ann)
-    if origin is Union or (origin is not None and str(origin) == "types.UnionType"):
+    if origin is Union or getattr(origin, "__name__", None) == "UnionType":  # X | None
         args = [a for a in get_args(ann) if a is not type(None)]
         return args[0] if args else ann
     if origin is Annotated:
