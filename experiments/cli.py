@@ -475,11 +475,12 @@ def cmd_query(args) -> int:
     """``propensim query``."""
     import pandas as pd
 
+    from propensim.experiments.compare import format_frame
     from propensim.experiments.store import query
 
     frame = query(args.folder, args.sql)
     with pd.option_context("display.max_columns", None, "display.width", 200):
-        print(frame.to_string(index=False))
+        print(format_frame(frame))  # one format per column, float noise as 0
     return 0
 
 
@@ -494,6 +495,11 @@ def cmd_plugins(args) -> int:
         if k != kind:
             print(("" if kind is None else "\n") + f"{k}:")
             kind = k
+        if k == "metrics":  # what a number means: its unit, and how a run sums up its rounds
+            from propensim.plugins.metrics import describe_metric
+            from propensim.plugins.registry import get_plugin
+
+            text = describe_metric(get_plugin(k, name))
         print(f"  {name:<{width}}  {text}")
     return 0
 
@@ -524,7 +530,9 @@ def cmd_demo(args) -> int:
         metrics = list(spec.compare.metrics) if spec.compare else spec.metrics
         table = point_means(load(store.path).runs, metrics, params)
         print("\nMeans per design point and arm (paired differences above):")
-        print(table.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+        from propensim.experiments.compare import format_frame
+
+        print(format_frame(table))
         report = _write_report(store.path)
         if report is not None:
             print(f"report: {report}")

@@ -327,8 +327,82 @@ def metric_directions(metrics: Sequence[str]) -> dict[str, str | None]:
     return out
 
 
+#: Float noise: a number within this of 0, relative to the larger of 1 and the largest magnitude
+#: of its column (of its metric, in the comparison table), is shown as 0: a price dispersion of
+#: 9.6e-15 is 0.
+NOISE = 1e-12
+
+
+def _denoised(values) -> np.ndarray:
+    arr = np.asarray(values, dtype=float)  # shape: (n,)
+    finite = np.abs(arr[np.isfinite(arr)])
+    scale = max(1.0, float(finite.max())) if finite.size else 1.0
+    return np.where(np.abs(arr) < NOISE * scale, 0.0, arr)
+
+
+def format_numbers(values, digits: int = 4, sign: bool = False) -> list[str]:
+    """One fixed-point format for a whole column: float noise as 0, never scientific notation.
+
+    The decimals give ``digits`` significant digits to the column's largest magnitude (at most
+    8 decimals; none when every value is a whole number); NaN and infinities show as ``-``.
+
+    Examples
+    --------
+    >>> format_numbers([12.5, 9.6e-15, 0.25])
+    ['12.50', '0.00', '0.25']
+    >>> format_numbers([250000.0, -3.0], sign=True)
+    ['+250000', '-3']
+    """
+    arr = _denoised(values)
+    finite = np.abs(arr[np.isfinite(arr) & (arr != 0)])
+    decimals = 0
+    if finite.size and not np.all(finite == np.round(finite)):  # whole numbers: no decimals
+        decimals = int(min(max(digits - 1 - np.floor(np.log10(finite.max())), 0), 8))
+    out = []
+    for x in arr:
+        if not np.isfinite(x):
+            out.append("-")
+            continue
+        text = f"{x:+.{decimals}f}" if sign else f"{x:.{decimals}f}"
+        if float(text) == 0:  # no "-0.00" or "+0.00": zero has no sign
+            text = text.lstrip("+-")
+        out.append(text)
+    return out
+
+
+def format_frame(frame, digits: int = 4) -> str:
+    """A DataFrame as plain text, each float column in one format (:func:`format_numbers`)."""
+    import pandas as pd
+
+    shown = frame.copy()
+    for col in shown.columns:
+        if pd.api.types.is_float_dtype(shown[col]):
+            shown[col] = format_numbers(shown[col].to_numpy(), digits)
+    with pd.option_context("display.max_rows", None, "display.max_columns", None):
+        return shown.to_string(index=False, max_colwidth=None, justify="right")
+
+
+def metric_notes(metrics: Sequence[str]) -> list[str]:
+    """``name: description; unit: ...; a run: ...`` of each registered metric (others left out)."""
+    from propensim.plugins import registry
+    from propensim.plugins.metrics import describe_metric
+
+    out = []
+    for name in dict.fromkeys(metrics):
+        try:
+            cls = registry.get_plugin("metrics", name)
+        except registry.UnknownPluginError:
+            continue
+        out.append(f"{name}: {describe_metric(cls)}")
+    return out
+
+
 def format_table(table) -> str:
-    """The comparison table as aligned plain text (4 significant digits, wins in percent)."""
+    """The comparison table as aligned plain text, wins in percent, then each metric's unit.
+
+    Each metric's differences share one fixed-point format (4 significant digits for its largest
+    one); float noise shows as 0 (:data:`NOISE`).
+    """
     import pandas as pd
 
     with_point = "point" in table.columns
@@ -346,15 +420,23 @@ def format_table(table) -> str:
         "arm better",
     ]
     lines = []
-    for r in table.to_dict("records"):
+    shown: dict[tuple[int, str], str] = {}  # (row, column) -> text, one format per metric
+    for metric in dict.fromkeys(table["metric"]):
+        rows = np.flatnonzero((table["metric"] == metric).to_numpy())
+        cols = ["mean_diff", "ci_low", "ci_high"]
+        block = table.iloc[rows][cols].to_numpy(dtype=float)  # shape: (n_rows, 3)
+        texts = format_numbers(block.reshape(-1), sign=True)
+        for k, text in enumerate(texts):
+            shown[(int(rows[k // 3]), cols[k % 3])] = text
+    for i, r in enumerate(table.to_dict("records")):
         cells = [str(r["metric"]), str(r["arm"]), str(r["baseline"])]
         if with_point:
             cells.append("all" if pd.isna(r["point"]) else str(r["point"]))
         cells += [
             str(r["n_pairs"]),
-            f"{r['mean_diff']:+.4g}",
-            f"{r['ci_low']:+.4g}",
-            f"{r['ci_high']:+.4g}",
+            shown[(i, "mean_diff")],
+            shown[(i, "ci_low")],
+            shown[(i, "ci_high")],
             r["better"] if isinstance(r["better"], str) else "-",
             "-" if pd.isna(r["arm_wins"]) else f"{100 * r['arm_wins']:.0f}%",
         ]
@@ -368,7 +450,8 @@ def format_table(table) -> str:
             for i, (c, w) in enumerate(zip(cells, widths, strict=True))
         ).rstrip()
 
-    return "\n".join([fmt(header), *(fmt(c) for c in lines)])
+    notes = metric_notes(list(table["metric"])) if len(table) else []
+    return "\n".join([fmt(header), *(fmt(c) for c in lines), *(["", *notes] if notes else [])])
 
 
 def point_means(runs, metrics: Sequence[str], parameters: Sequence[str]):
@@ -426,7 +509,11 @@ def likelihood_term(p: float) -> str:
 def _amount(x: float, base: float) -> tuple[str, bool]:
     """A change as a percentage of the baseline mean when that is meaningful, else absolute."""
     if np.isfinite(base) and abs(base) > 1e-12:
+        if abs(x) < NOISE * max(1.0, abs(base)):  # float noise (a shown number, not the data)
+            return "0%", True
         return f"{100 * x / abs(base):.3g}%", True
+    if abs(x) < NOISE:
+        return "0", False
     return f"{x:.4g}", False
 
 

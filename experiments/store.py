@@ -343,6 +343,7 @@ class Store:
             "sessions": int(old.get("sessions", 0)) + 1,
             "backend": backend or {},
             "metrics": list(metrics),
+            "metric_descriptions": _metric_descriptions(metrics),
             "parameters": list(store._schema.params),
             **({"inputs": inputs} if inputs else {}),
             "counts": store.counts(),
@@ -601,6 +602,13 @@ class Store:
         return f"Store({str(self.path)!r}, counts={self.counts()})"
 
 
+def _metric_descriptions(metrics: Sequence[str]) -> dict[str, str]:
+    """Each metric column's meaning, unit and aggregation over a run (registered ones only)."""
+    from propensim.experiments.compare import metric_notes
+
+    return dict(note.split(": ", 1) for note in metric_notes(metrics))
+
+
 def _plan_inputs(plans: Sequence) -> dict[str, str]:
     """``{path: sha256}`` of every input file the plans read (their ``config["inputs"]``)."""
     out: dict[str, str] = {}
@@ -836,6 +844,28 @@ def query(folder, sql: str):
     """
     path = Path(folder)
     _read_manifest(path) if path.is_dir() else load(path)
-    from propensim.experiments.readonly_query import run_readonly
+    from propensim.experiments.readonly_query import _views, run_readonly
 
-    return run_readonly(path, sql)
+    try:
+        return run_readonly(path, sql)
+    except StoreError as exc:
+        import re
+
+        m = re.search(r"Table with name (\w+) does not exist", str(exc))
+        if m is None:
+            raise
+        name, tables = m.group(1), ", ".join(_views(path)) or "none stored yet"
+        hint = _NOT_COLLECTED.get(name.lower())
+        why = f" (not collected: set {hint} in the spec)" if hint else ""
+        raise StoreError(
+            f"query failed: {path} has no table {name!r}{why}; tables in this folder: {tables}"
+        ) from None
+
+
+#: What a spec sets to collect each optional table.
+_NOT_COLLECTED = {
+    "rounds": "collect.rounds = true",
+    "traders": "collect.traders_every = N",
+    "ledger": "collect.ledger = true",
+    "totals": "collect.totals = true",
+}

@@ -44,6 +44,7 @@ __all__ = [
     "BuyerPrice",
     "SellerPrice",
     "competitive_equilibrium",
+    "describe_metric",
     "gini",
     "max_surplus",
     "trade_surplus",
@@ -605,3 +606,58 @@ class SellerPrice:
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Price units."""
         return _weighted(outcome.seller_gets, outcome.trades.quantity.astype(float))
+
+
+# -- units and aggregation, for tables and listings ------------------------------------------
+_PRICE, _MONEY, _GOODS = "price units", "money (price units x goods)", "units of goods"
+#: The unit of each built-in metric (a round's value and a run's value share it). A third-party
+#: metric may set its own ``unit`` class attribute; :func:`describe_metric` reads either.
+_UNITS = {
+    Volume: _GOODS,
+    UnmetDemand: _GOODS,
+    UnmetSupply: _GOODS,
+    MeanPrice: _PRICE,
+    VolumeWeightedPrice: _PRICE,
+    PriceDispersion: _PRICE,
+    PreferenceGap: _PRICE,
+    BuyerPrice: _PRICE,
+    SellerPrice: _PRICE,
+    BuyerSurplus: _MONEY,
+    SellerSurplus: _MONEY,
+    TotalSurplus: _MONEY,
+    TaxRevenue: _MONEY,
+    DeadweightLoss: _MONEY,
+    AllocativeEfficiency: "fraction of the largest achievable surplus (1 = all of it)",
+    FixedEfficiency: "fraction of the largest surplus before any intervention",
+    SurplusGini: "Gini coefficient (0 = equal)",
+    SmithAlpha: "% of the equilibrium price",
+    EntropicEnergy: "energy units of the curve family",
+}
+for _cls, _unit in _UNITS.items():
+    _cls.unit = _unit
+
+#: How a run's rounds become its one number, in words (the ``aggregate`` attribute).
+AGGREGATE_WORDS = {
+    "sum": "sum over its rounds",
+    "mean": "mean over its rounds (rounds without a value left out)",
+    "last": "value after its last round",
+    "final_half_mean": "mean over the second half of its rounds",
+}
+
+
+def describe_metric(metric) -> str:
+    """``description; unit: ...; a run: ...`` of a metric class or instance.
+
+    Examples
+    --------
+    >>> describe_metric(Volume)
+    'units traded in the round; unit: units of goods; a run: sum over its rounds'
+    """
+    text = str(getattr(metric, "description", "")).strip().splitlines()[0]
+    unit = getattr(metric, "unit", None)
+    agg = getattr(metric, "aggregate", None)
+    if unit:
+        text += f"; unit: {unit}"
+    if agg:
+        text += f"; a run: {AGGREGATE_WORDS.get(agg, agg)}"
+    return text

@@ -10,12 +10,11 @@ import warnings
 from pathlib import Path
 
 import pytest
+from _checksums import tree_checksums as folder_checksums
 
 from propensim.experiments.runner import run_experiment
 from propensim.experiments.spec import SpecError, load_spec
 from propensim.experiments.store import StoreError, load
-
-from _checksums import tree_checksums as folder_checksums
 
 EDGES = "0 3\n1 4\n2 5\n0 4\n"
 
@@ -283,3 +282,98 @@ def test_warnings_that_differ_only_in_numbers_merge_into_one_line():
         "3-12 of 40 traders have no possible trading partner (in 1-3 part(s) of it)": 7,
         "another warning": 1,
     }
+
+
+# -- numbers that tell the truth -----------------------------------------------------------------
+def test_float_noise_is_zero_and_a_column_keeps_one_fixed_format():
+    from propensim.experiments.compare import format_frame, format_numbers
+
+    assert format_numbers([9.6e-15]) == ["0"]
+    column = format_numbers([123456.0, 9.6e-15, 0.5])
+    assert column == ["123456", "0", "0"]  # one format for the column; never 1.235e+05
+    assert format_numbers([0.1234, -0.0001, 1e-16], sign=True) == ["+0.1234", "-0.0001", "0.0000"]
+    import pandas as pd
+
+    text = format_frame(pd.DataFrame({"price_sd": [0.25, 9.6e-15], "volume": [12.0, 3.0]}))
+    assert "e-" not in text and "e+" not in text
+    assert text.splitlines()[2].split() == ["0.0000", "3"]
+
+
+def test_compare_table_shows_noise_as_zero_with_units_and_aggregation():
+    import pandas as pd
+
+    from propensim.experiments.compare import compare_arms, format_table, statements
+
+    runs = pd.DataFrame(
+        {
+            "arm": ["a", "b"] * 3,
+            "point": 0,
+            "replicate": [0, 0, 1, 1, 2, 2],
+            "index": range(6),
+            "price_sd": [0.0, 9.6e-15, 0.0, 9.6e-15, 0.0, 9.6e-15],
+            "volume": [10.0, 12.0, 11.0, 12.5, 9.0, 11.0],
+        }
+    )
+    table = compare_arms(
+        runs,
+        ["price_sd", "volume"],
+        "a",
+        bootstrap=200,
+        directions={"price_sd": "lower", "volume": "higher"},
+    )
+    text = format_table(table)
+    assert "e-15" not in text and "e-1" not in text
+    sd_row = next(line for line in text.splitlines() if line.startswith("price_sd "))
+    assert sd_row.split()[4:7] == ["0", "0", "0"]
+    assert (
+        "volume: units traded in the round; unit: units of goods; a run: sum over its rounds"
+        in text
+    )
+    assert "price_sd: standard deviation" in text and "a run: mean over its rounds" in text
+    assert not any("e-15" in s for s in statements(table))
+
+
+def test_plugins_listing_states_units_and_aggregation(capsys):
+    from propensim.experiments.cli import main
+
+    assert main(["plugins"]) == 0
+    out = capsys.readouterr().out
+    volume = next(line for line in out.splitlines() if line.strip().startswith("volume "))
+    price_sd = next(line for line in out.splitlines() if line.strip().startswith("price_sd "))
+    assert "unit: units of goods" in volume and "a run: sum over its rounds" in volume
+    assert "unit: price units" in price_sd and "a run: mean over its rounds" in price_sd
+
+
+def test_manifest_describes_metric_columns(tmp_path):
+    path = _grow(tmp_path, "a")
+    run_experiment(path, tmp_path / "out", workers=1, progress=False)
+    manifest = json.loads((tmp_path / "out" / "manifest.json").read_text())
+    assert manifest["metric_descriptions"]["volume"].endswith("a run: sum over its rounds")
+
+
+# -- query and compare leave the folder alone, and say what exists ---------------------------------
+def test_query_on_a_table_not_collected_lists_the_tables(tmp_path, capsys):
+    pytest.importorskip("duckdb")
+    from propensim.experiments.cli import main
+
+    out = tmp_path / "out"
+    run_experiment(_grow(tmp_path, "a"), out, workers=1, progress=False)
+    capsys.readouterr()
+    assert main(["query", str(out), "SELECT * FROM ledger"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert "no table 'ledger' (not collected: set collect.ledger = true in the spec)" in err
+    assert "tables in this folder: runs, timings, rounds" in err
+
+
+def test_compare_with_a_metric_writes_nothing_into_the_folder(tmp_path, capsys):
+    from propensim.experiments.cli import main
+
+    out = tmp_path / "out"
+    run_experiment(_grow(tmp_path, "a"), out, workers=1, progress=False)
+    before = folder_checksums(out)
+    assert main(["compare", str(out), "--metric", "volume"]) == 0
+    assert folder_checksums(out) == before  # comparison.csv from `run` is not overwritten
+    target = tmp_path / "elsewhere.csv"
+    assert main(["compare", str(out), "--metric", "volume", "--csv", str(target)]) == 0
+    assert folder_checksums(out) == before and target.exists()
