@@ -21,6 +21,8 @@ Monks, T., Currie, C. S. M., Onggo, B. S., Robinson, S., Kunc, M. and Taylor, S.
 Strengthening the reporting of empirical simulation studies: Introducing the STRESS guidelines.
 Journal of Simulation 13(1), 55-67.
 Efron, B. and Tibshirani, R. J. (1993). *An Introduction to the Bootstrap*, ch. 13.
+Mastrandrea, M. D. et al. (2010). Guidance note for lead authors of the IPCC Fifth Assessment
+Report on consistent treatment of uncertainties. IPCC (the calibrated likelihood scale).
 """
 
 from __future__ import annotations
@@ -598,6 +600,49 @@ def _svg_img(fig: _Figure) -> str:
     )
 
 
+#: Calibrated likelihood language (Mastrandrea et al. 2010, the IPCC guidance note on the
+#: consistent treatment of uncertainties): lower bound of the probability, term.
+LIKELIHOOD_TERMS = (
+    (0.99, "virtually certain"),
+    (0.90, "very likely"),
+    (0.66, "likely"),
+    (0.33, "about as likely as not"),
+    (0.10, "unlikely"),
+    (0.01, "very unlikely"),
+    (0.0, "exceptionally unlikely"),
+)
+
+
+def likelihood_term(p: float) -> str:
+    """The calibrated term for a probability ``p`` (Mastrandrea et al. 2010).
+
+    Examples
+    --------
+    >>> likelihood_term(0.95), likelihood_term(0.5), likelihood_term(0.005)
+    ('very likely', 'about as likely as not', 'exceptionally unlikely')
+    """
+    for bound, term in LIKELIHOOD_TERMS:
+        if p > bound or (bound == 0.0 and p >= 0.0):
+            return term
+    return LIKELIHOOD_TERMS[-1][1]
+
+
+def _share_up(page: _Page, metric: str, arm: str, baseline: str, seed: int) -> float:
+    """Share of bootstrap means of the paired differences ``arm - baseline`` above zero."""
+    import numpy as np
+
+    ok = page.ok
+    a = ok[ok["arm"] == arm].set_index(["point", "replicate"])[metric]
+    b = ok[ok["arm"] == baseline].set_index(["point", "replicate"])[metric]
+    d = (a - b).dropna().to_numpy(dtype=float)  # shape: (n_pairs,)
+    d = d[np.isfinite(d)]
+    if d.size == 0:
+        return float("nan")
+    rng = np.random.default_rng(np.random.SeedSequence(seed))
+    idx = rng.integers(0, d.size, size=(2000, d.size))  # shape: (2000, n_pairs)
+    return float(np.mean(d[idx].mean(axis=1) > 0))
+
+
 def _plain_comparisons(page: _Page) -> list[str]:
     out = []
     if page.comparison is None:
@@ -619,11 +664,26 @@ def _plain_comparisons(page: _Page) -> list[str]:
                 f" {r['arm']} was better ({better} is better) in "
                 f"{100 * r['arm_wins']:.0f}% of the pairs."
             )
+        p_up = _share_up(page, r["metric"], r["arm"], r["baseline"], seed=len(out))
+        likely = ""
+        if p_up == p_up:  # not NaN
+            likely = (
+                f" In the model it is {likelihood_term(p_up)} ({100 * p_up:.0f}% of bootstrap "
+                f"resamples) that {r['metric']} is higher under {r['arm']} than under "
+                f"{r['baseline']}."
+            )
         out.append(
             f"<b>{_e(r['metric'])}</b>: under <b>{_e(r['arm'])}</b> it was {way} than under "
             f"<b>{_e(r['baseline'])}</b> by {_e(_num(abs(d)))} on average over {r['n_pairs']} "
             f"paired runs ({level} interval of the difference {_e(_num(lo))} to "
-            f"{_e(_num(hi))}); {verdict}.{_e(wins)}"
+            f"{_e(_num(hi))}); {verdict}.{_e(wins)}{_e(likely)}"
+        )
+    if out:
+        out.append(
+            "Likelihood terms follow the calibrated scale of Mastrandrea et al. (2010): "
+            "virtually certain &gt; 99%, very likely &gt; 90%, likely &gt; 66%, about as likely "
+            "as not 33-66%, unlikely &lt; 33%, very unlikely &lt; 10%, exceptionally unlikely "
+            "&lt; 1%; they describe the model under its assumptions, not the world."
         )
     return out
 

@@ -300,3 +300,33 @@ def test_calibration_folder_gets_a_report_with_the_fitted_densities(tmp_path):
     assert "Fitted densities against the data" in text and "not investment" in text
     assert "<td>prices.csv</td>" in text
     assert text == write_report(folder).path.read_text()  # the same bytes again
+
+
+@pytest.mark.parametrize(
+    ("p", "term"),
+    [
+        (0.995, "virtually certain"),
+        (0.95, "very likely"),
+        (0.70, "likely"),
+        (0.50, "about as likely as not"),
+        (0.20, "unlikely"),
+        (0.05, "very unlikely"),
+        (0.005, "exceptionally unlikely"),
+        (0.0, "exceptionally unlikely"),
+    ],
+)
+def test_likelihood_terms_follow_the_calibrated_scale(p, term):
+    # Mastrandrea et al. (2010): >99%, >90%, >66%, 33-66%, <33%, <10%, <1%
+    from propensim.experiments.report import likelihood_term
+
+    assert likelihood_term(p) == term
+
+
+def test_comparisons_say_how_likely_a_difference_is(report):
+    _, text = report
+    sentences = re.findall(r"In the model it is ([a-z ]+) \((\d+)% of bootstrap", text)
+    assert len(sentences) == 5
+    from propensim.experiments.report import likelihood_term
+
+    for term, pct in sentences:
+        assert term == likelihood_term(int(pct) / 100) or int(pct) in (1, 10, 33, 66, 90, 99)
