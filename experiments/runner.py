@@ -12,8 +12,10 @@ Backends
   where there is none; both start workers from a fresh interpreter, safe with threads; the
   global start method is left alone). Worker processes start with
   ``OMP_NUM_THREADS``, ``OPENBLAS_NUM_THREADS`` and ``MKL_NUM_THREADS`` set to 1, so N workers use
-  N cores and not N times the BLAS pool. A script that starts a pool must guard its entry point
-  with ``if __name__ == "__main__":`` (with "spawn", workers import the main module).
+  N cores and not N times the BLAS pool. Workers are not told the main script's path (see
+  ``_main_script_hidden``), so a script that starts a sweep needs no ``if __name__ ==
+  "__main__":`` guard. A worker that dies stops the sweep with how it ended (signal or exit
+  code).
 - ``scheduler="tcp://host:8786"``: a running Dask scheduler (``distributed.Client(address)``).
   ``dask_local=N`` starts a ``distributed.LocalCluster`` of N single-threaded worker processes.
   Every worker needs the same propensim (and plugins) installed.
@@ -317,6 +319,7 @@ class _LocalPool:
         # pool's lifetime and are restored in close().
         self._env = pinned_threads()
         self._env.__enter__()
+        self._seen: dict[int, Any] = {}  # pid -> worker process, to tell how one ended
         try:
             self._pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=_worker_context())
         except BaseException:
@@ -324,7 +327,28 @@ class _LocalPool:
             raise
 
     def submit(self, batch):
-        return self._pool.submit(_run_batch, batch, *_plugin_payload(batch))
+        # Worker processes start here, on demand; they need nothing from the main script (plans
+        # are plain data, plugins travel with them), so they do not run it again: a script that
+        # calls run_experiment works without an ``if __name__ == "__main__":`` guard.
+        with _main_script_hidden():
+            fut = self._pool.submit(_run_batch, batch, *_plugin_payload(batch))
+        self._seen.update(getattr(self._pool, "_processes", None) or {})
+        return fut
+
+    def death_cause(self) -> str | None:
+        """How a worker process ended, when one did (exit code or signal), else None."""
+        import signal
+
+        for proc in self._seen.values():
+            code = proc.exitcode
+            if code is None or code == 0:
+                continue
+            if code < 0:
+                name = signal.Signals(-code).name if -code in signal.valid_signals() else -code
+                why = " (the kernel's out-of-memory killer sends it)" if -code == 9 else ""
+                return f"a worker process was killed by signal {name}{why}"
+            return f"a worker process exited with code {code} (its error is printed above)"
+        return None
 
     def wait_any(self, futures):
         from concurrent.futures import FIRST_COMPLETED, wait
@@ -340,6 +364,31 @@ class _LocalPool:
     def describe(self) -> dict[str, Any]:
         method = self._pool._mp_context.get_start_method()
         return {"kind": self.kind, "workers": self.n_workers, "start_method": method}
+
+
+@contextlib.contextmanager
+def _main_script_hidden() -> Iterator[None]:
+    """While worker processes start: they are not told the main script's path.
+
+    Started with "forkserver" or "spawn", a child imports the parent's main script (as
+    ``__mp_main__``) so that objects pickled from it can be found; a script without an
+    ``if __name__ == "__main__":`` guard would then start its sweep again in every worker, which
+    multiprocessing refuses, and the pool breaks. Runs never need the script (their plans are
+    plain data), so its ``__file__`` is hidden from ``multiprocessing.spawn.get_preparation_data``
+    while a worker starts, then restored. A main module run with ``-m`` (``__spec__`` set) is
+    left alone.
+    """
+    main = sys.modules.get("__main__")
+    hide = main is not None and main.__dict__.get("__spec__") is None and hasattr(main, "__file__")
+    if not hide:
+        yield
+        return
+    path = main.__file__
+    del main.__file__
+    try:
+        yield
+    finally:
+        main.__file__ = path
 
 
 #: Modules a worker needs for any run; a forkserver imports them once, so each worker starts
@@ -440,7 +489,7 @@ class _Dask:
                 # pairs on a busy 2-core machine; see docs/performance.md).
                 if prestart_workers(None, dask_local=int(local)):
                     light["distributed.worker.multiprocessing-method"] = "forkserver"
-                with pinned_threads(), dask.config.set(light):
+                with pinned_threads(), dask.config.set(light), _main_script_hidden():
                     self._cluster = distributed.LocalCluster(
                         n_workers=int(local),
                         threads_per_worker=1,
@@ -847,9 +896,11 @@ def _sweep(
                     for r in results:
                         store.add(r)
                     store.flush()
+                    cause = getattr(backend, "death_cause", lambda: None)()
+                    cause = cause or "a worker process ended abruptly (cause unknown)"
                     raise SweepStopped(
-                        "a worker process died (out of memory?); completed runs are stored: "
-                        f"run again into {store.path} to resume",
+                        f"{cause}; completed runs are stored: run again into {store.path} to "
+                        "resume",
                         store,
                     ) from None
             results = [r._to_frames() for r in results]
