@@ -82,6 +82,13 @@ class _Removal(_Window):
     def rows(self, market, rng: np.random.Generator) -> np.ndarray:  # pragma: no cover
         raise NotImplementedError
 
+    def _pool(self, market) -> np.ndarray:
+        """The rows to choose from: every trader, or those of ``self.role``."""
+        role = market.population.role
+        if getattr(self, "role", None) is None:
+            return np.arange(role.size)
+        return np.flatnonzero(role == ROLE_NAMES.index(self.role))
+
     def begin(self, market, rng: np.random.Generator) -> None:
         """Remove the chosen traders' edges."""
         self._network_before = market.network
@@ -131,12 +138,6 @@ class RemoveHubs(_Removal):
         pool = self._pool(market)
         if self.k > pool.size:
             raise ValueError(f"k is {self.k} but there are only {pool.size} traders to remove")
-
-    def _pool(self, market) -> np.ndarray:
-        role = market.population.role
-        if self.role is None:
-            return np.arange(role.size)
-        return np.flatnonzero(role == ROLE_NAMES.index(self.role))
 
     def rows(self, market, rng: np.random.Generator) -> np.ndarray:
         """The k rows of highest degree now (a random tie-break from the stream)."""
@@ -250,12 +251,6 @@ class RemoveTraders(_Removal):
             raise ValueError(
                 f"count is {self.count} but there are only {self._pool(market).size} traders"
             )
-
-    def _pool(self, market) -> np.ndarray:
-        role = market.population.role
-        if self.role is None:
-            return np.arange(role.size)
-        return np.flatnonzero(role == ROLE_NAMES.index(self.role))
 
     def rows(self, market, rng: np.random.Generator) -> np.ndarray:
         """The selected rows (a random choice draws one permutation from the stream)."""
