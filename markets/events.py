@@ -387,17 +387,19 @@ class EventMarket:
             lam = np.sqrt(self._lam_trader[b] * self._lam_trader[s])  # shape: (n_edges,)
         self._analytic = pop.curve == "normal"
         if self._analytic:
-            vb, vs = np.square(pop.sigma[b]), np.square(pop.sigma[s])  # shape: (n_edges,)
+            with self._taxed_curves():  # under a tax each side judges what it keeps of a price
+                mu_b, mu_s = pop.mu[b], pop.mu[s]  # shape: (n_edges,)
+            vb, vs = np.square(pop.sigma[b]), np.square(pop.sigma[s])
             total = vb + vs
-            gap = pop.mu[b] - pop.mu[s]
-            peak = pop.activity[b] * pop.activity[s] * np.exp(-np.square(gap) / (2.0 * total))
-            self._chan[:, 0] = (pop.mu[b] * vs + pop.mu[s] * vb) / total  # Bromiley (2003)
+            peak = pop.activity[b] * pop.activity[s] * np.exp(-np.square(mu_b - mu_s) / (2 * total))
+            self._chan[:, 0] = (mu_b * vs + mu_s * vb) / total  # Bromiley (2003)
             self._chan[:, 1] = np.sqrt(vb * vs / total)
-            del vb, vs, total, gap
+            del vb, vs, total, mu_b, mu_s
         else:
             from propensim.agents.joint_curve import joint
 
-            peak = np.asarray(joint(pop.curves(b), pop.curves(s)).peak, dtype=float)
+            with self._taxed_curves():
+                peak = np.asarray(joint(pop.curves(b), pop.curves(s)).peak, dtype=float)
             self._chan[:, :2] = 0.0  # prices are drawn after each chunk instead
         self._with_cash = self._analytic
         if not self._analytic and np.isfinite(pop.cash[pop.role == 0]).any():
@@ -418,6 +420,25 @@ class EventMarket:
             self._size,
             self._acc,
         )
+
+    @contextmanager
+    def _taxed_curves(self):
+        """Shift curves by the per-unit taxes in force while the block runs, as round mode does.
+
+        A buyer who pays ``price + buyer_tax`` accepts a price as its curve accepts what it pays:
+        its curve sits ``buyer_tax`` lower; a seller's sits ``seller_tax`` higher (MODEL.md
+        section 9). The joint curve of the shifted curves gives the rate and the market price.
+        """
+        pop, policy = self.population, self.policy
+        if not (policy.buyer_tax or policy.seller_tax):
+            yield
+            return
+        saved = pop.mu.copy()
+        pop.mu += np.where(pop.role == SELLER, policy.seller_tax, -policy.buyer_tax)
+        try:
+            yield
+        finally:
+            np.copyto(pop.mu, saved)
 
     @property
     def total_rate(self) -> float:
@@ -556,7 +577,8 @@ class EventMarket:
         if not self._with_cash:
             from propensim.agents.joint_curve import joint
 
-            price = np.asarray(joint(pop.curves(b), pop.curves(s)).sample_price(self._rng))
+            with self._taxed_curves():
+                price = np.asarray(joint(pop.curves(b), pop.curves(s)).sample_price(self._rng))
         trades = Trades(b, s, price.copy(), np.ones(edge.shape[0], dtype=np.int64), edge.copy())
         self.state.remaining = np.where(self._is_seller, pop.stock, _NO_LIMIT)
         check_trades(self.state, trades)

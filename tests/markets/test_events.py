@@ -372,3 +372,34 @@ def test_event_specs_check_intervention_windows():
     raw["interventions"] = [{"name": "unit_tax", "amount": 1.0, "start": 3}]
     with pytest.raises(SpecError, match="interventions.0.start|interventions\\[0\\].start"):
         load_spec(raw)
+
+
+def test_a_tax_moves_the_joint_curve_as_in_round_mode():
+    # Under a per-unit buyer tax t the buyer judges a price p by what it pays, p + t: its curve
+    # sits t lower, so the pair's rate is lambda * peak of P_b(x + t) P_s(x) and the market price
+    # is drawn from that joint curve (MODEL.md section 9; the round mode's clearing stage does
+    # the same); the buyer pays p + t, the seller keeps p.
+    cfg = {
+        "population": {"n_buyers": 1, "n_sellers": 1, "value": 100.0, "cost": 90.0,
+                       "sigma": [4.0, 4.0], "stock": 10**9},
+        "network": "complete",
+        "metrics": ["volume", "buyer_price", "seller_price"],
+        "events": {"rate": 2.0, "horizon": 400.0, "window": 100.0},
+        "interventions": [{"name": "unit_tax", "amount": 3.0, "start": 2}],
+    }  # fmt: skip
+    m = build_event_market(cfg, seed=3)
+    mu_b, mu_s = m.population.mu
+    assert m.total_rate == pytest.approx(2.0 * math.exp(-((mu_b - mu_s) ** 2) / 64.0))
+    m.step()
+    m.step()
+    m.step()
+    taxed = 2.0 * math.exp(-((mu_b - 3.0 - mu_s) ** 2) / 64.0)
+    assert m.total_rate == pytest.approx(taxed, rel=1e-12)
+    np.testing.assert_array_equal(m.population.mu, [mu_b, mu_s])  # the shift is undone
+    led = m.ledger_columns()
+    late = led["time"] > 200.0
+    # prices from the shifted joint curve: mean halfway between mu_b - t and mu_s
+    mid = 0.5 * (mu_b - 3.0 + mu_s)
+    assert stats.kstest(led["price"][late], "norm", args=(mid, math.sqrt(8.0))).pvalue > 1e-3
+    rows = m.rounds_columns()
+    np.testing.assert_allclose(rows["buyer_price"][2] - rows["seller_price"][2], 3.0)
