@@ -367,15 +367,18 @@ class EventMarket:
         self._stock = self.population.stock.copy()
         self._cash = self.population.cash.copy()
         self._rebuild()
-        if self.keep_ledger:  # expected trades if the rates stayed as they start
-            expected = min(float(self.max_events), self.total_rate * self.horizon)
-            need, have = expected * LEDGER_BYTES, available_memory()
-            if need > 0.8 * have:
-                raise MemoryError(
-                    f"the ledger of about {expected:.3g} trades needs about {need / 2**30:.2f} GiB "
-                    f"but about {have / 2**30:.2f} GiB is available; lower events.horizon or "
-                    "events.max_events, or keep no ledger (collect.ledger = false)"
-                )
+        # Expected trades if the rates stayed as they start: a window's trades are held until its
+        # metrics are measured, and the ledger keeps them all.
+        span = self.horizon if self.keep_ledger else self.window
+        expected = min(float(self.max_events), self.total_rate * span)
+        need, have = expected * LEDGER_BYTES, available_memory()
+        if need > 0.8 * have:
+            what = "the ledger" if self.keep_ledger else "one window"
+            raise MemoryError(
+                f"{what} of about {expected:.3g} trades needs about {need / 2**30:.2f} GiB but "
+                f"about {have / 2**30:.2f} GiB is available; lower events.horizon, events.window "
+                "or events.max_events, or keep no ledger (collect.ledger = false)"
+            )
 
     def _rebuild(self) -> None:
         """Recompute every channel's rate and price law from the curves, stock and cash now."""
@@ -547,7 +550,8 @@ class EventMarket:
             if got:
                 trades = self._settle(out_time[:got], out_edge[:got], out_price[:got])
                 parts.append(trades)
-                times.append(out_time[:got].copy())
+                if self.keep_ledger:
+                    times.append(out_time[:got].copy())
                 if self.drift is not None:
                     self._since_drift.append(trades)
             if status == 2:  # no live channel: nothing happens until the next drift step

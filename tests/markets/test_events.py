@@ -214,7 +214,7 @@ def test_a_run_that_would_not_fit_in_memory_says_so(monkeypatch):
     with pytest.raises(MemoryError, match="channels need about"):
         build_event_market(_config(), seed=1)
     monkeypatch.setattr(ev, "available_memory", lambda: 2e5)
-    with pytest.raises(MemoryError, match="ledger of about"):
+    with pytest.raises(MemoryError, match="the ledger of about"):
         build_event_market(_config(horizon=1e6, window=1e6), seed=1)
 
 
@@ -403,3 +403,14 @@ def test_a_tax_moves_the_joint_curve_as_in_round_mode():
     assert stats.kstest(led["price"][late], "norm", args=(mid, math.sqrt(8.0))).pvalue > 1e-3
     rows = m.rounds_columns()
     np.testing.assert_allclose(rows["buyer_price"][2] - rows["seller_price"][2], 3.0)
+
+
+def test_a_window_too_large_for_memory_says_so_without_a_ledger(monkeypatch):
+    monkeypatch.setattr(ev, "available_memory", lambda: 2e5)
+    with pytest.raises(MemoryError, match="one window of about"):
+        cfg = _config(horizon=1e6, window=1e6)
+        cfg["market"] = {"keep_ledger": False}
+        build_event_market(cfg, seed=1)
+    cfg = _config(horizon=1e6, window=1.0)
+    cfg["market"] = {"keep_ledger": False}
+    build_event_market(cfg, seed=1)  # short windows fit
