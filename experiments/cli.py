@@ -418,8 +418,18 @@ def cmd_compare(args) -> int:
     Reads the results folder and never writes into it; ``--csv FILE`` saves the table.
     """
     from propensim.experiments.compare import compare_folder, format_table, statements
-    from propensim.experiments.store import StoreError, atomic_write_bytes
+    from propensim.experiments.store import StoreError, atomic_write_bytes, load
 
+    if args.baseline is not None and not args.baseline.strip():
+        runs = load(Path(args.folder)).runs
+        arms = ", ".join(dict.fromkeys(runs["arm"])) if len(runs) else "none stored yet"
+        raise InputError(f"--baseline is empty; allowed: one of the arms ({arms})")
+    target = Path(args.csv) if args.csv else None
+    if target is not None and ("\x00" in args.csv or target.is_dir() or not args.csv.strip()):
+        raise InputError(
+            f"--csv {args.csv!r}: not a file name to write (a folder, blank, or a NUL in it); "
+            "allowed: a CSV file path outside the results folder"
+        )
     try:
         table = compare_folder(
             args.folder, args.metric or None, args.baseline, by_point=args.by_point
@@ -444,9 +454,12 @@ def cmd_compare(args) -> int:
             print(f"- {line}")
     print()
     print(CAUTION)
-    if args.csv:
-        target = Path(args.csv)
-        atomic_write_bytes(target, table.to_csv(index=False).encode())
+    if target is not None:
+        try:
+            atomic_write_bytes(target, table.to_csv(index=False).encode())
+        except OSError as exc:
+            why = exc.strerror or exc
+            raise InputError(f"--csv {args.csv!r}: cannot write it: {why}") from None
         print(f"written: {target}")
     return 0
 
@@ -542,8 +555,16 @@ def cmd_demo(args) -> int:
 
 def cmd_pair(args) -> int:
     """``propensim pair``."""
+    import math
+
     from propensim.experiments.pair import PairExample, pair_table
 
+    for name in ("buyer-mu", "buyer-sigma", "seller-mu", "seller-sigma", "gamma"):
+        value = getattr(args, name.replace("-", "_"))
+        if not math.isfinite(value):
+            raise InputError(f"--{name}: must be a finite number, got {value}")
+        if name.endswith("sigma") and value <= 0:
+            raise InputError(f"--{name}: must be > 0 (a curve's width), got {value:g}")
     ex = PairExample(
         buyer_mu=args.buyer_mu,
         buyer_sigma=args.buyer_sigma,
@@ -552,7 +573,11 @@ def cmd_pair(args) -> int:
         gamma=args.gamma,
         levels=args.levels,
     )
-    print(pair_table(ex))
+    try:
+        table = pair_table(ex)
+    except ValueError as exc:  # e.g. gamma or levels out of the range the curves allow
+        raise InputError(f"pair: {_one_line(exc)}") from None
+    print(table)
     return 0
 
 

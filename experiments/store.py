@@ -84,12 +84,27 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` atomically: temp file in the same folder, fsync, os.replace."""
     path = Path(path)
     tmp = path.with_name(f".tmp-{path.name}-{os.getpid()}")
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):  # no temporary file left behind
+            tmp.unlink()
+        raise
     _fsync_dir(path.parent)
+
+
+def shown_path(path) -> str:
+    """A path as a message shows it: plain, or quoted with escapes when it has odd characters.
+
+    A name of whitespace or control characters (a line separator) would print as nothing.
+    """
+    text = str(path)
+    plain = text and text.isprintable() and text.strip() == text and " " not in text
+    return text if plain else repr(text)
 
 
 def _parquet_bytes(table) -> bytes:
@@ -296,6 +311,11 @@ class Store:
             propensim results folder, or a stored file cannot be read. Nothing is changed then.
         """
         path = Path(path)
+        if "\x00" in str(path) or not str(path).strip():
+            raise StoreError(
+                f"{shown_path(path)}: not a usable folder name (blank, or a NUL character in it); "
+                "choose another results folder (--out)"
+            )
         mpath = path / "manifest.json"
         if path.exists() and not path.is_dir():
             raise StoreError(f"{path}: exists and is not a folder; choose a new results folder")
@@ -820,8 +840,8 @@ def load(folder) -> Results:
         If the folder is missing, not ours, or its manifest cannot be read.
     """
     path = Path(folder)
-    if not path.is_dir():
-        raise StoreError(f"{path}: no such results folder")
+    if "\x00" in str(folder) or not path.is_dir():
+        raise StoreError(f"{shown_path(folder)}: no such results folder")
     return Results(path, _read_manifest(path))
 
 

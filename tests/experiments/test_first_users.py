@@ -377,3 +377,12 @@ def test_compare_with_a_metric_writes_nothing_into_the_folder(tmp_path, capsys):
     target = tmp_path / "elsewhere.csv"
     assert main(["compare", str(out), "--metric", "volume", "--csv", str(target)]) == 0
     assert folder_checksums(out) == before and target.exists()
+
+
+def test_a_failed_atomic_write_leaves_no_temporary_file(tmp_path):
+    from propensim.experiments.store import atomic_write_bytes
+
+    (tmp_path / "target").mkdir()
+    with pytest.raises(IsADirectoryError):
+        atomic_write_bytes(tmp_path / "target", b"data")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["target"]
