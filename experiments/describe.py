@@ -104,7 +104,11 @@ def _plugins(spec) -> list[tuple[str, str, Any, dict]]:
         add("drift rule", "drift", drift)
     for m in spec.metrics:
         add("metric", "metrics", {"name": m})
+    for item in spec.resolved().get("interventions") or []:
+        add("intervention", "interventions", item)
     for arm in spec.arms:
+        for item in arm.get("interventions") or []:
+            add(f"intervention in arm {arm['name']}", "interventions", item)
         for path, value in arm["set"].items():
             section = path.split(".")[0]
             kind = {"clearing": "clearing", "network": "networks", "drift": "drift"}.get(section)
@@ -112,6 +116,19 @@ def _plugins(spec) -> list[tuple[str, str, Any, dict]]:
                 if all(p[1] != value for p in out):
                     add(f"{section} in arm {arm['name']}", kind, {"name": value})
     return out
+
+
+def _interventions(items: list) -> str:
+    """``name`` (parameters, rounds) for each intervention table."""
+    out = []
+    for item in items:
+        params = {k: v for k, v in item.items() if k not in ("name", "start", "until")}
+        until = item.get("until")
+        when = f"from round {item.get('start', 0)}" + (
+            f" until {until}" if until is not None else ""
+        )
+        out.append(f"`{item['name']}` ({_params(params)}; {when})")
+    return "; ".join(out)
 
 
 def _params(d: dict) -> str:
@@ -270,9 +287,14 @@ def describe_spec(spec) -> str:
         + f" = {spec.n_runs} runs.",
         "",
     ]
+    top = spec.resolved().get("interventions") or []
+    if top:
+        lines += [f"Interventions in every arm, in order: {_interventions(top)}.", ""]
     for arm in spec.arms:
+        extra = arm.get("interventions") or []
         lines.append(
             f"- arm `{arm['name']}`: {arm.get('description') or ''} ({_params(arm['set'])})"
+            + (f"; interventions: {_interventions(extra)}" if extra else "")
         )
     if spec.arms:
         lines.append("")
