@@ -77,6 +77,9 @@ LEDGER_BYTES = 40
 #: Bytes per channel: endpoints (twice), price mean and sd, seller index, rate and tree share,
 #: and the temporaries of a rebuild.
 CHANNEL_BYTES = 8 * 14
+#: Unit quantities of one chunk of trades (read only: trades hold views of it).
+_ONES = np.ones(CHUNK, dtype=np.int64)
+_ONES.flags.writeable = False
 #: A buyer's units are not limited within a window (one round's capacity means nothing here).
 _NO_LIMIT = np.int64(1) << 62
 
@@ -487,7 +490,7 @@ class EventMarket:
             if self.time >= end:
                 break
             self._drift_step()  # an inner drift step (drift_every < window)
-        window_trades = Trades.concat(parts)
+        window_trades = parts[0] if len(parts) == 1 else Trades.concat(parts)
         outcome = _outcome(parts, window_trades, len(self.population))
         if self.keep_totals and len(window_trades):
             pop, t = self.population, window_trades
@@ -501,7 +504,8 @@ class EventMarket:
             row[name] = float(metric.measure(self.state, outcome))
         self._rows.append(row)
         if self.keep_ledger and len(window_trades):
-            self._ledger.append((w, np.concatenate(times), window_trades))
+            self._ledger.append((w, times[0] if len(times) == 1 else np.concatenate(times),
+                                 window_trades))  # fmt: skip
         if self.traders_every and w % self.traders_every == 0:
             pop = self.population
             self._snapshots.append(
@@ -551,7 +555,7 @@ class EventMarket:
                 trades = self._settle(out_time[:got], out_edge[:got], out_price[:got])
                 parts.append(trades)
                 if self.keep_ledger:
-                    times.append(out_time[:got].copy())
+                    times.append(out_time[:got])
                 if self.drift is not None:
                     self._since_drift.append(trades)
             if status == 2:  # no live channel: nothing happens until the next drift step
@@ -583,7 +587,8 @@ class EventMarket:
 
             with self._taxed_curves():
                 price = np.asarray(joint(pop.curves(b), pop.curves(s)).sample_price(self._rng))
-        trades = Trades(b, s, price.copy(), np.ones(edge.shape[0], dtype=np.int64), edge.copy())
+        # the kernel's output buffers are fresh for every chunk: the trades may keep them
+        trades = Trades(b, s, price, _ONES[: edge.shape[0]], edge)
         self.state.remaining = np.where(self._is_seller, pop.stock, _NO_LIMIT)
         check_trades(self.state, trades)
         bt, st = float(self.policy.buyer_tax), float(self.policy.seller_tax)
