@@ -17,7 +17,15 @@ since a design may push a parameter out of its range.
 Arms and design points override dotted fields of the base configuration, arm first, then point.
 An override that changes a plugin's ``name`` (``clearing.name = "call_auction"``) starts that
 plugin's table afresh: only the parameters set by the same arm or point are kept, because the
-parameters of one rule generally mean nothing to another.
+parameters of one rule generally mean nothing to another. A design parameter that only some arms
+have is listed in those arms' ``parameters = ["clearing.meetings"]``: it then applies to them
+alone; a parameter no arm lists applies to every arm. Arms of a point and replicate still share
+the seed and every parameter applied to both, so they stay paired.
+
+File parameters of plugins (``file_parameters``, e.g. ``network.path`` of ``edge_list``) are read
+relative to the spec file's folder, written out absolute, and the SHA-256 of each file's content
+is kept in every run configuration that reads it (``config["inputs"]``), so run ids change when a
+file does.
 
 Seeds: run ``(point, replicate)`` gets ``SeedSequence(seed, spawn_key=(point, replicate))``,
 shared by every arm of that replicate (common random numbers); random, Latin hypercube and Sobol'
