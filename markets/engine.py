@@ -31,7 +31,7 @@ from propensim.markets.build import (  # noqa: F401  (build_market etc. also imp
 )
 from propensim.markets.recorder import Recorder
 from propensim.markets.schedule import PricePolicy, Schedule
-from propensim.plugins import registry
+from propensim.plugins import acceleration, registry
 from propensim.plugins.types import MarketState, TradingNetwork
 
 #: Metrics measured when none are named.
@@ -142,6 +142,8 @@ class MarketEngine:
             round=0,
             equilibrium_price=_equilibrium_price(population),
         )
+        #: Compiled kernels or numpy, chosen once here (importing numba now, not in round 0).
+        self.compiled = acceleration.choose()
         self._set_derived()
         # The fixed welfare benchmark: the market as it stands before any intervention.
         self.state._benchmark_source = (
@@ -246,13 +248,17 @@ class MarketEngine:
     # -- one round -------------------------------------------------------------------------
     def step(self) -> None:
         """Run one round: its stages in order (see :mod:`propensim.markets.stages`)."""
-        stages.begin_round(self)
-        stages.apply_interventions(self)
-        trades = stages.clear(self)
-        outcome = stages.settle(self, trades)
-        stages.drift(self, outcome)
-        row = stages.measure(self, outcome)
-        stages.record(self, outcome, row)
+        acceleration.activate(self.compiled)  # the code chosen at build, every round
+        try:
+            stages.begin_round(self)
+            stages.apply_interventions(self)
+            trades = stages.clear(self)
+            outcome = stages.settle(self, trades)
+            stages.drift(self, outcome)
+            row = stages.measure(self, outcome)
+            stages.record(self, outcome, row)
+        finally:
+            acceleration.activate(None)
         self.round += 1
 
     def run(self, rounds: int):

@@ -26,7 +26,6 @@ _BOUND_SLACK = 1e-9
 def begin_round(market) -> None:
     """Restore holdings (when every round is a fresh trading period) and set units left."""
     pop, state = market.population, market.state
-    acceleration.count_work(len(pop))
     state.round = market.round
     remaining = acceleration.start_round(  # one compiled pass when available: same numbers
         market.replenish,
@@ -110,11 +109,24 @@ def settle(market, trades: Trades) -> RoundOutcome:
         seller_gets = trades.price - policy.seller_tax
         revenue = float((trades.quantity * (policy.buyer_tax + policy.seller_tax)).sum())
     settle_trades(pop, trades, buyer_pays, seller_gets)
-    outcome = RoundOutcome.from_trades(trades, len(pop), buyer_pays, seller_gets, revenue)
+    outcome = _Outcome.from_trades(trades, len(pop), buyer_pays, seller_gets, revenue)
     if state.price_bounded:
         outcome.unmet_demand, outcome.unmet_supply = _unmet(market, outcome)
     market.treasury += revenue
     return outcome
+
+
+class _Outcome(RoundOutcome):
+    """A round's outcome whose per-trader tallies, when first read, take one compiled pass."""
+
+    def _tally(self) -> None:
+        fused = acceleration.kernel("tally")
+        if fused is None:
+            return super()._tally()
+        trades, n = self.trades, self.__dict__.pop("_n")
+        self.traded, self.mean_price = fused(
+            trades.buyer, trades.seller, trades.quantity, trades.price, n
+        )
 
 
 def _check_bounds(market, trades: Trades) -> None:

@@ -16,6 +16,7 @@ import math
 import numpy as np
 
 from propensim.agents.population import BUYER, Population
+from propensim.plugins import acceleration
 from propensim.plugins.sequential_accept import greedy_accept
 from propensim.plugins.types import MarketState, Trades, TradingNetwork
 
@@ -171,6 +172,15 @@ def pair_on_edges(
     ``min(units_b, units_s)`` unit trades, taken edge by edge in random order
     (:func:`greedy_accept`). Prices are left NaN for the caller to fill.
     """
+    fused = acceleration.kernel("pair_on_edges")
+    n = units_b.shape[0]
+    if fused is not None and units_s.shape == (n,) and net.n == n and net.buyer.size:
+        ub = np.ascontiguousarray(units_b, dtype=np.int64)
+        us = np.ascontiguousarray(units_s, dtype=np.int64)
+        b, s, q, e = fused(rng, net.buyer, net.seller, ub, us)  # the same pairs, in one pass
+        if b.size == 0:
+            return Trades.empty()
+        return Trades(b, s, np.full(b.size, np.nan), q, e)
     eligible = np.flatnonzero((units_b[net.buyer] > 0) & (units_s[net.seller] > 0))
     if eligible.size == 0:
         return Trades.empty()
@@ -267,7 +277,6 @@ def double_auction(
 ) -> Trades:
     """Continuous double auction with one standing quote per trader (see DoubleAuction)."""
     pop, net = state.population, state.network
-    n = len(pop)
     rem = np.array(state.remaining, dtype=np.int64, copy=True)
     live = np.flatnonzero((rem > 0) & (net.degree > 0))  # traders who can quote at all
     if live.size == 0:
@@ -294,6 +303,24 @@ def double_auction(
             q_high = np.full(n_quotes, hi)
         quote = q_low + u * (q_high - q_low)
 
+    bounded = state.price_bounded  # MODEL.md section 9: quotes outside the bounds are refused
+    floor, ceiling = state.price_floor, state.price_ceiling
+    cash = pop.cash.astype(float)  # a copy: the loop spends it
+    fast = acceleration.double_auction_book(
+        who, is_bid, quote, rem, cash, _partner_arrays(state), bounded, floor, ceiling
+    )
+    if fast is not None:  # the same loop, compiled (numba_loops.double_auction_book)
+        out_b, out_s, out_p = fast
+        if out_b.size == 0:
+            return Trades.empty()
+        return Trades(out_b, out_s, out_p, np.ones(out_b.size))
+    return _book_loop(state, who, is_bid, quote, rem, cash, bounded, floor, ceiling)
+
+
+def _book_loop(state, who, is_bid, quote, rem, cash, bounded, floor, ceiling) -> Trades:
+    """The arrival loop in Python: the reference the compiled loop repeats step for step."""
+    n = len(state.population)
+    n_quotes = who.size
     # The arrival loop reads a few partners per step: plain Python lists and memoryviews serve
     # such scalar reads several times faster than numpy calls on small slices.
     sellers_of, b_ptr, buyers_of, s_ptr, comp = _partner_views(state)
@@ -301,7 +328,7 @@ def double_auction(
     posted = [-1] * n  # when it was posted
     cleared = [-1] * (max(comp) + 1)  # last book clearing per part of the network
     rem_l = rem.tolist()
-    cash_l = pop.cash.astype(float).tolist()
+    cash_l = cash.tolist()
     out_b: list[int] = []
     out_s: list[int] = []
     out_p: list[float] = []
@@ -309,8 +336,6 @@ def double_auction(
     # The mechanism is sequential: each quote meets the book left by all earlier quotes, so the
     # arrivals are a Python loop (lean: every random number was drawn above).
     who_l, bid_l, quote_l = who.tolist(), is_bid.tolist(), quote.tolist()
-    bounded = state.price_bounded  # MODEL.md section 9: quotes outside the bounds are refused
-    floor, ceiling = state.price_floor, state.price_ceiling
     for t in range(n_quotes):
         i = who_l[t]
         if rem_l[i] <= 0:
@@ -351,16 +376,15 @@ def double_auction(
 
 #: Key of the per-market cache entry holding the partner views of the double auction.
 _PARTNERS_KEY = "double_auction.partners"
+_VIEWS_KEY = "double_auction.partner_views"
 
 
-def _partner_views(state: MarketState):
-    """Partner lists for the arrival loop (cached per network).
+def _partner_arrays(state: MarketState):
+    """Partner lists of every trader as int64 arrays (cached per network).
 
     Returns ``(sellers_of, b_ptr, buyers_of, s_ptr, comp)``: buyer ``i``'s sellers are
-    ``sellers_of[b_ptr[i]:b_ptr[i + 1]]`` and seller ``i``'s buyers
-    ``buyers_of[s_ptr[i]:s_ptr[i + 1]]`` (memoryviews over int64 arrays: slicing copies
-    nothing, unlike lists, which would hold one Python int per edge), and ``comp`` is each
-    row's network part, as a list.
+    ``sellers_of[b_ptr[i]:b_ptr[i + 1]]`` (in edge order), seller ``i``'s buyers
+    ``buyers_of[s_ptr[i]:s_ptr[i + 1]]`` (in edge order), and ``comp`` is each row's network part.
     """
     net = state.network
     entry = state.cache.get(_PARTNERS_KEY)
@@ -370,15 +394,31 @@ def _partner_views(state: MarketState):
     by_seller = np.argsort(net.seller, kind="stable")  # shape: (n_edges,) edges by seller
     buyers = np.ascontiguousarray(net.buyer[by_seller], dtype=np.int64)
     sellers = np.ascontiguousarray(net.seller, dtype=np.int64)
-    s_ptr = np.concatenate([[0], np.cumsum(np.bincount(net.seller, minlength=n))])
-    views = (
-        memoryview(sellers),
-        net.buyer_ptr.tolist(),
-        memoryview(buyers),
-        s_ptr.tolist(),
-        net.component.tolist(),
+    s_ptr = np.concatenate([[0], np.cumsum(np.bincount(net.seller, minlength=n))]).astype(np.int64)
+    arrays = (
+        sellers,
+        np.ascontiguousarray(net.buyer_ptr, dtype=np.int64),
+        buyers,
+        s_ptr,
+        np.ascontiguousarray(net.component, dtype=np.int64),
     )
-    state.cache[_PARTNERS_KEY] = (net, views)
+    state.cache[_PARTNERS_KEY] = (net, arrays)
+    return arrays
+
+
+def _partner_views(state: MarketState):
+    """The partner lists of :func:`_partner_arrays` for the Python loop (cached per network).
+
+    Memoryviews over the int64 edge arrays (slicing copies nothing, unlike lists, which would
+    hold one Python int per edge); lists for the pointers and parts.
+    """
+    net = state.network
+    entry = state.cache.get(_VIEWS_KEY)
+    if entry is not None and entry[0] is net:
+        return entry[1]
+    sellers, b_ptr, buyers, s_ptr, comp = _partner_arrays(state)
+    views = (memoryview(sellers), b_ptr.tolist(), memoryview(buyers), s_ptr.tolist(), comp.tolist())
+    state.cache[_VIEWS_KEY] = (net, views)
     return views
 
 

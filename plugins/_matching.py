@@ -149,6 +149,24 @@ def propensity_round(
     if fast is not None:
         u, s, edge, peak = fast
         np.exp(peak, out=peak)
+        if meetings == 1 and state.meetings is None:  # the rest of the round in one pass
+            rest = acceleration.accept_one_width(
+                rng,
+                (u, s, edge, peak),
+                pop.activity,
+                lonely,
+                threshold,
+                own.start,
+                state.remaining,
+                pop.cash,
+                pop.mu,
+                math.sqrt(0.5 * var_b),
+            )
+            if rest is not None and rest[0] == 0:
+                return Trades.empty()
+            if rest is not None and rest[0] == 1:
+                _, buyer, seller, price, where = rest
+                return Trades(buyer, seller, price, np.ones(buyer.size, dtype=np.int64), where)
     else:
         # Meetings in row order (buyer, then meeting number): column reads walk memory forward.
         u = rng.random(rows.size)  # shape: (k,) on [0, 1 - 2^-53]

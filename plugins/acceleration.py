@@ -2,22 +2,22 @@
 
 A round of a large market is bound by memory traffic and by the normal draws of the drift: numpy
 makes one pass over a column per operation, and its standard-normal sampler costs about 9 ns a
-draw on the machines we measure on. numba compiles NumPy's own ziggurat for
-``Generator.standard_normal`` (same tables, same use of the bit stream), so one loop can draw and
-combine in a single pass and still give the same numbers, bit for bit, and leave the generator
-in the same state. Each kernel here has a numpy twin (the code that runs without it) and the
-tests check that the two agree exactly; the operations keep numpy's order, so rounding is the
-same too (numba does not contract ``a * b + c`` into a fused multiply-add unless asked).
+draw on the machines we measure on. A round of a small market is bound by the fixed cost of each
+numpy call (about a microsecond): one compiled pass per rule replaces many of them. numba
+compiles NumPy's own ziggurat for ``Generator.standard_normal`` (same tables, same use of the bit
+stream), so one loop can draw and combine in a single pass and still give the same numbers, bit
+for bit, and leave the generator in the same state. Each kernel here has a numpy twin (the code
+that runs without it) and the tests check that the two agree exactly; the operations keep
+numpy's order, so rounding is the same too (numba does not contract ``a * b + c`` into a fused
+multiply-add unless asked).
 
-When the kernels run:
-
-* Only for columns of at least :data:`MIN_LENGTH` rows (below that numpy is as fast).
-* ``PROPENSIM_KERNELS=numpy``: never. ``=numba``: from the first round. ``=auto`` (the default):
-  once this process has stepped :data:`WORK_BEFORE_COMPILED` trader-rounds. Importing numba and
-  loading the compiled code costs about 0.3 s once per process; small or short runs never pay
-  it, long large ones earn it back many times. Because the results are identical either way,
-  switching mid-run changes nothing but the speed.
-* Without numba (not installed, or failing to import) everything runs on numpy.
+When the kernels run: whenever numba imports, at every size, unless ``PROPENSIM_KERNELS=numpy``
+(``=numba`` or ``=auto``, the default, use them). A market makes the choice once, when it is
+built (:func:`choose`), so a run is the same code from its first round to its last; nothing
+counts work or switches mid-run. The compiled code is cached on disk (``cache=True``): a fresh
+process loads it (about 0.3 s for importing numba, once per process, paid at the first build)
+and never compiles it again. Without numba (not installed, or failing to import) everything runs
+on numpy, with the same results.
 """
 
 from __future__ import annotations
@@ -26,13 +26,13 @@ import os
 
 import numpy as np
 
-#: Shortest column worth a compiled call (a call costs a few microseconds of dispatch).
-MIN_LENGTH = 4096
-#: Trader-rounds this process steps on numpy before ``auto`` mode compiles: ~0.5 s of one-off
-#: import and load against ~13 ns saved per trader-round.
-WORK_BEFORE_COMPILED = 20_000_000
+#: Kept for callers that still pass a length: columns of every length use the kernels now.
+MIN_LENGTH = 0
 
-_state = {"work": 0, "module": None, "failed": False}
+_state = {"module": None, "failed": False}
+_UNSET = object()
+#: The kernels of the market whose round is running (its build-time choice), else unset.
+_active = [_UNSET]
 
 
 def mode() -> str:
@@ -43,22 +43,10 @@ def mode() -> str:
     return value
 
 
-def count_work(trader_rounds: int) -> None:
-    """Record work done on numpy (``auto`` mode compiles once enough has been done)."""
-    _state["work"] += int(trader_rounds)
-
-
-def compiled(length: int):
-    """The compiled kernels module if a column of ``length`` rows should use it, else None."""
-    if length < MIN_LENGTH or _state["failed"]:  # small markets never read the setting
-        return None
-    how = mode()
-    if how == "numpy":
-        return None
-    if how == "auto" and _state["work"] < WORK_BEFORE_COMPILED:
-        return None
+def _load():
+    """The kernels module, imported once per process (None if numba is missing or broken)."""
     module = _state["module"]
-    if module is None:
+    if module is None and not _state["failed"]:
         try:
             from propensim.plugins import numba_loops as module
         except Exception:  # numba missing or broken: numpy does the same work
@@ -66,6 +54,38 @@ def compiled(length: int):
             return None
         _state["module"] = module
     return module
+
+
+def choose() -> bool:
+    """Whether a market built now runs the compiled kernels (it asks once, when built).
+
+    Importing numba and the cached kernels happens here, at build time, not in a first round.
+    """
+    return mode() != "numpy" and _load() is not None
+
+
+def compiled(length: int = 0):
+    """The compiled kernels module, or None when numpy is to do the work.
+
+    Inside a market's round: that market's choice, made when it was built (see
+    :func:`activate`). Elsewhere (a rule called by hand): ``PROPENSIM_KERNELS`` and whether
+    numba imports. ``length`` is ignored (kernels serve columns of every length).
+    """
+    active = _active[0]
+    if active is not _UNSET:
+        return active
+    if _state["failed"] or mode() == "numpy":
+        return None
+    return _load()
+
+
+def activate(use: bool | None):
+    """Run the kernels (True) or numpy (False) until the next call; None: back to the default.
+
+    A market calls it around each round with the choice it made when built, so that its rules
+    run the same code from the first round to the last, whatever other markets do.
+    """
+    _active[0] = _UNSET if use is None else (_load() if use else None)
 
 
 def ou_apply(mu, offset, decay, gain, sd, rng, out) -> bool:
@@ -82,8 +102,9 @@ def ou_apply(mu, offset, decay, gain, sd, rng, out) -> bool:
     columns = [_strided(c) for c in (offset, decay, gain, sd)]
     if out.shape != (n,) or any(step and c.shape != (n,) for c, step in columns):
         raise ValueError("ou_apply: every column must have as many rows as mu")  # no bounds checks
+    xi = rng.standard_normal(n)  # shape: (n,) the same draws, in row order
     module.ou_noise(
-        np.ascontiguousarray(mu, dtype=float), *(x for c in columns for x in c), rng, out
+        np.ascontiguousarray(mu, dtype=float), *(x for c in columns for x in c), xi, out
     )
     return True
 
@@ -123,10 +144,10 @@ def meet_one_width(rng, deg, start, seller, mu, first_row, scale):
         return None
     if start.shape != (k,) or first_row < 0 or first_row + k > mu.shape[0]:
         raise ValueError("meet_one_width: buyer rows outside the population")  # no bounds checks
-    frac, arg = np.empty(k), np.empty(k)
+    frac, arg = rng.random(k), np.empty(k)  # frac: the uniforms, then their fractional parts
     partner, edge = np.empty(k, dtype=np.int64), np.empty(k, dtype=np.int64)
     module.meet_one_width(
-        rng, deg, start, seller, mu, int(first_row), float(scale), frac, partner, edge, arg
+        frac, deg, start, seller, mu, int(first_row), float(scale), frac, partner, edge, arg
     )
     return frac, partner, edge, arg
 
@@ -169,3 +190,112 @@ def start_round(replenish, stock0, cash0, stock, cash, capacity, is_seller):
     remaining = np.empty(n, dtype=np.int64)
     module.start_round(bool(replenish), stock0, cash0, stock, cash, capacity, is_seller, remaining)
     return remaining
+
+
+def double_auction_book(who, is_bid, quote, rem, cash, partners, bounded, floor, ceiling):
+    """The double auction's arrival loop, compiled (see ``numba_loops.double_auction_book``).
+
+    ``partners`` is ``(sellers, b_ptr, buyers, s_ptr, comp)`` as int64 arrays. Updates ``rem``
+    and ``cash`` in place; returns ``(buyer, seller, price)`` arrays, or None when not compiled.
+    """
+    module = compiled()
+    if module is None:
+        return None
+    sellers, b_ptr, buyers, s_ptr, comp = partners
+    n = rem.shape[0]
+    if (
+        cash.shape != (n,)
+        or comp.shape != (n,)
+        or b_ptr.shape != (n + 1,)
+        or s_ptr.shape != (n + 1,)
+        or who.shape != is_bid.shape
+        or who.shape != quote.shape
+        or (who.size and (who.min() < 0 or who.max() >= n))
+    ):
+        raise ValueError("double_auction_book: columns of different lengths")  # no bounds checks
+    n_comp = int(comp.max()) + 1 if n else 1
+    return module.double_auction_book(
+        who,
+        is_bid,
+        quote,
+        rem,
+        cash,
+        sellers,
+        b_ptr,
+        buyers,
+        s_ptr,
+        comp,
+        n_comp,
+        bool(bounded),
+        float(floor),
+        float(ceiling),
+    )
+
+
+def outcome_offset(pop, traded, step: float):
+    """``OutcomeDrift``'s offset column in one compiled pass, or None when not compiled here.
+
+    See ``numba_loops.outcome_offset``.
+    """
+    module = compiled()
+    if module is None:
+        return None
+    n = pop.role.shape[0]
+    traded = np.asarray(traded)
+    columns = (pop.stock, pop.cash, pop.capacity, traded)
+    if any(c.shape != (n,) for c in columns) or traded.dtype.kind not in "iu":
+        return None
+    out = np.empty(n)
+    module.outcome_offset(pop.role, pop.stock, pop.cash, pop.capacity, traded, step, out)
+    return out
+
+
+def accept_one_width(rng, meet, activity, lonely, threshold, first_row, remaining, cash, mu, sd):
+    """Compiled second half of a one-meeting propensity round (``numba_loops.accept_one_width``).
+
+    ``meet`` is ``(frac, partner, edge, peak)`` from :func:`meet_one_width` with ``peak``
+    exponentiated. Returns ``(status, buyer, seller, price, edge)`` or None when not compiled.
+    """
+    module = compiled()
+    if module is None:
+        return None
+    frac, partner, edge, peak = meet
+    k, n = frac.shape[0], mu.shape[0]
+    if (
+        first_row < 0
+        or first_row + k > n
+        or remaining.shape != (n,)
+        or cash.shape != (n,)
+        or activity.shape != (n,)
+        or (lonely.size and (lonely.min() < 0 or lonely.max() >= k))
+    ):
+        raise ValueError("accept_one_width: rows outside the population")  # no bounds checks
+    heights = bool(activity.min() < 1.0)
+    use_threshold = threshold is not None
+    return module.accept_one_width(
+        rng,
+        frac,
+        partner,
+        edge,
+        peak,
+        activity,
+        heights,
+        lonely,
+        float(threshold) if use_threshold else 0.0,
+        use_threshold,
+        int(first_row),
+        remaining,
+        cash,
+        mu,
+        float(sd),
+    )
+
+
+def kernel(name: str):
+    """The compiled kernel ``name`` of ``numba_loops``, or None when numpy is to do the work.
+
+    For kernels whose wrapper needs no checks (equal-length columns, or compiled with bounds
+    checks).
+    """
+    module = compiled()
+    return None if module is None else getattr(module, name)

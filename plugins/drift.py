@@ -389,6 +389,11 @@ class OutcomeDrift(_ForceRule):
     def terms(self, state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
         """Stiffness 0; offset ``-step`` / ``+step`` by role and outcome."""
         pop = state.population
+        offset = acceleration.outcome_offset(pop, outcome.traded, float(self.step))
+        if offset is not None:  # one compiled pass: the same numbers
+            # A scalar stiffness, as AnchorDrift's for one width: the sum's coefficients stay
+            # scalars (the same numbers as from a column of zeros).
+            return np.float64(0.0), offset
         traded, missed = _outcome_masks(state, outcome)
         better = np.where(pop.role == BUYER, -1.0, 1.0)  # shape: (n,): a better price for them
         direction = np.where(traded, better, np.where(missed, -better, 0.0))  # shape: (n,)
@@ -586,6 +591,17 @@ class DriftSum:
 
     def check(self) -> None:
         """Raise ValueError for bad parameters or a rule that cannot be summed."""
+        key = _parameters(self)
+        try:
+            same = key is not None and self.__dict__.get("_checked") == key
+        except (TypeError, ValueError):  # parameters that do not compare (arrays)
+            same = False
+        if same:
+            return  # checked already, with these very parameters
+        self._check()
+        self._checked = key
+
+    def _check(self) -> None:
         _check_langevin("DriftSum", self.eta, self.noise, self.dt)
         for rule in self.rules:
             if not callable(getattr(rule, "terms", None)) and not callable(
@@ -678,6 +694,21 @@ class DriftSum:
             f"DriftSum(rules={list(self.rules)!r}, eta={self.eta!r}, noise={self.noise!r}, "
             f"dt={self.dt!r})"
         )
+
+
+def _parameters(drift: DriftSum):
+    """The numbers :meth:`DriftSum.check` depends on (None when they cannot be compared)."""
+    try:
+        rules = tuple(drift.rules)
+        return (
+            drift.eta,
+            drift.noise,
+            drift.dt,
+            rules,
+            tuple(tuple(vars(r).items()) for r in rules),
+        )
+    except TypeError:  # a rule without vars (slots): check every time
+        return None
 
 
 def _apply_after(rule, state: MarketState, outcome: RoundOutcome, rng, mu, sigma):

@@ -20,7 +20,7 @@ from typing import ClassVar
 import numpy as np
 
 from propensim.agents.population import BUYER, SELLER
-from propensim.plugins import welfare
+from propensim.plugins import acceleration, welfare
 from propensim.plugins.types import MarketState, RoundOutcome
 
 __all__ = [
@@ -192,6 +192,19 @@ def trade_surplus(state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray
     return (value[tr.buyer] - paid) * q, (got - value[tr.seller]) * q
 
 
+def _surplus_sums(state: MarketState, outcome: RoundOutcome) -> tuple[float, float]:
+    """Buyers' and sellers' surplus of the round: :func:`trade_surplus`, summed."""
+    fused = acceleration.kernel("surplus_sums")
+    if fused is None:
+        gain_b, gain_s = trade_surplus(state, outcome)
+        return float(gain_b.sum()), float(gain_s.sum())
+    tr = outcome.trades
+    paid = tr.price if outcome.buyer_pays is None else outcome.buyer_pays
+    got = tr.price if outcome.seller_gets is None else outcome.seller_gets
+    gain_b, gain_s = fused(state.population.value, tr.buyer, tr.seller, tr.quantity, paid, got)
+    return float(gain_b), float(gain_s)
+
+
 def _weighted_prices(outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
     tr = outcome.trades
     return tr.price, tr.quantity.astype(float)
@@ -220,6 +233,9 @@ class MeanPrice:
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Mean of ``trades.price``."""
         price = outcome.trades.price
+        fused = acceleration.kernel("mean_of")
+        if fused is not None:  # one compiled pass, numpy's rounding
+            return float(fused(price))
         return float(price.mean()) if price.size else _NAN
 
 
@@ -232,6 +248,9 @@ class VolumeWeightedPrice:
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``sum(p q) / sum(q)``."""
+        fused = acceleration.kernel("weighted_price")
+        if fused is not None:  # one compiled pass, numpy's rounding
+            return float(fused(outcome.trades.price, outcome.trades.quantity))
         price, q = _weighted_prices(outcome)
         return float((price * q).sum() / q.sum()) if q.sum() > 0 else _NAN
 
@@ -248,6 +267,9 @@ class PriceDispersion:
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Quantity-weighted population standard deviation."""
+        fused = acceleration.kernel("price_spread")
+        if fused is not None:  # one compiled pass, numpy's rounding
+            return float(fused(outcome.trades.price, outcome.trades.quantity, 0.0, False))
         price, q = _weighted_prices(outcome)
         if q.sum() <= 0:
             return _NAN
@@ -269,6 +291,9 @@ class PreferenceGap:
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``mean(mu[sellers]) - mean(mu[buyers])``."""
         pop = state.population
+        fused = acceleration.kernel("preference_gap")
+        if fused is not None and pop.role.shape == pop.mu.shape:  # one compiled pass
+            return float(fused(pop.mu, pop.role))
         is_buyer = pop.role == BUYER  # shape: (n,)
         is_seller = pop.role == SELLER  # shape: (n,)
         if not is_buyer.any() or not is_seller.any():
@@ -285,7 +310,7 @@ class BuyerSurplus:
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Sum over trades."""
-        return float(trade_surplus(state, outcome)[0].sum())
+        return _surplus_sums(state, outcome)[0]
 
 
 class SellerSurplus:
@@ -297,7 +322,7 @@ class SellerSurplus:
 
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Sum over trades."""
-        return float(trade_surplus(state, outcome)[1].sum())
+        return _surplus_sums(state, outcome)[1]
 
 
 class AllocativeEfficiency:
@@ -325,11 +350,17 @@ class AllocativeEfficiency:
         """The largest achievable surplus for this round's traders (cached)."""
         pop = state.population
         net = state.network
+        key = getattr(self, "plugin_name", "efficiency")
+        cached = state.cache.get(key)
+        same = acceleration.kernel("same_units")
+        if cached is not None and same is not None and cached["network"] is net:
+            traded = np.asarray(outcome.traded)
+            columns = (pop.capacity, pop.stock, traded, pop.value, cached["value"], cached["units"])
+            if all(c.shape == pop.role.shape for c in columns) and same(pop.role, *columns):
+                return cached["max_surplus"]  # one compiled pass instead of the checks below
         is_buyer = pop.role == BUYER  # shape: (n,)
         start_stock = pop.stock + np.asarray(outcome.traded)  # shape: (n,): before this round
         units = np.where(is_buyer, pop.capacity, np.minimum(pop.capacity, start_stock))
-        key = getattr(self, "plugin_name", "efficiency")
-        cached = state.cache.get(key)
         if (
             cached is not None
             and cached["network"] is net
@@ -366,8 +397,8 @@ class AllocativeEfficiency:
         best = self.benchmark(state, outcome)
         if not best > 0:
             return _NAN
-        gain_b, gain_s = trade_surplus(state, outcome)
-        return float((gain_b.sum() + gain_s.sum()) / best)
+        gain_b, gain_s = _surplus_sums(state, outcome)
+        return float((gain_b + gain_s) / best)
 
 
 class SurplusGini:
@@ -390,6 +421,12 @@ class SurplusGini:
         """Gini of the per-trader surplus, shape (n,)."""
         n = len(state.population)
         tr = outcome.trades
+        fused = acceleration.kernel("surplus_gini")
+        if fused is not None:  # one compiled pass (bounds checked), numpy's rounding
+            paid = tr.price if outcome.buyer_pays is None else outcome.buyer_pays
+            got = tr.price if outcome.seller_gets is None else outcome.seller_gets
+            value = state.population.value
+            return float(fused(value, tr.buyer, tr.seller, tr.quantity, paid, got, n))
         gain_b, gain_s = trade_surplus(state, outcome)
         per_trader = np.bincount(tr.buyer, weights=gain_b, minlength=n) + np.bincount(
             tr.seller, weights=gain_s, minlength=n
@@ -417,6 +454,12 @@ class SmithAlpha:
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """``100 sqrt(sum q (p - P0)^2 / sum q) / P0``."""
         p0 = float(state.equilibrium_price)
+        fused = acceleration.kernel("price_spread")
+        if fused is not None:  # one compiled pass, numpy's rounding
+            if not np.isfinite(p0) or p0 <= 0:
+                return _NAN
+            tr = outcome.trades
+            return float(100.0 * fused(tr.price, tr.quantity, p0, True) / p0)
         price, q = _weighted_prices(outcome)
         if q.sum() <= 0 or not np.isfinite(p0) or p0 <= 0:
             return _NAN
@@ -445,6 +488,9 @@ class EntropicEnergy:
     def measure(self, state: MarketState, outcome: RoundOutcome) -> float:
         """Sum over traders."""
         pop = state.population
+        fused = acceleration.kernel("spring_energy") if pop.curve == "normal" else None
+        if fused is not None and pop.gamma.shape == pop.mu.shape == pop.sigma.shape:
+            return float(fused(pop.gamma, pop.mu, pop.value, pop.sigma))
         if pop.curve == "normal":
             energy = pop.gamma * (pop.mu - pop.value) ** 2 / (2.0 * pop.sigma**2)  # shape: (n,)
         else:

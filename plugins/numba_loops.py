@@ -1,7 +1,7 @@
 """The numba-compiled loops behind :mod:`propensim.plugins.acceleration` (imported only from there).
 
 Every function repeats, element by element and in the same order, the numpy operations it
-replaces, so the results are identical (tests/plugins/testacceleration.py checks them bit for bit).
+replaces, so the results are identical (tests/plugins/test_acceleration.py checks them bit for bit).
 Compiled code is cached on disk (``cache=True``): the first use on a machine compiles, later
 processes load it.
 """
@@ -13,16 +13,18 @@ import numpy as np
 
 
 @numba.njit(cache=True, nogil=True)
-def ou_noise(mu, offset, off_step, decay, dec_step, gain, gain_step, sd, sd_step, rng, out):
-    """``out[i] = (mu[i] decay + offset gain) + xi_i sd``, ``xi_i`` the i-th standard normal.
+def ou_noise(mu, offset, off_step, decay, dec_step, gain, gain_step, sd, sd_step, xi, out):
+    """``out[i] = (mu[i] decay + offset gain) + xi[i] sd``, ``xi`` standard normals.
 
-    Matches ``out = mu * decay; out += offset * gain; xi = rng.standard_normal(n); xi *= sd;
-    out += xi``. Each of ``offset``, ``decay``, ``gain``, ``sd`` is a column read at
-    ``i * step`` (step 0: one value for every row).
+    Matches ``out = mu * decay; out += offset * gain; xi *= sd; out += xi``. Each of
+    ``offset``, ``decay``, ``gain``, ``sd`` is a column read at ``i * step`` (step 0: one value
+    for every row). The draws come in as a column (numpy's ``Generator.standard_normal``, the
+    same numbers numba's ziggurat gives): handing a Generator to a compiled function costs
+    about 10 microseconds a call, a whole small market's drift.
     """
     for i in range(mu.shape[0]):
         drift = mu[i] * decay[i * dec_step] + offset[i * off_step] * gain[i * gain_step]
-        out[i] = drift + rng.standard_normal() * sd[i * sd_step]
+        out[i] = drift + xi[i] * sd[i * sd_step]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -44,15 +46,16 @@ def settle(b, s, q, pb, ps, stock, cash):
 
 
 @numba.njit(cache=True, nogil=True)
-def meet_one_width(rng, deg, start, seller, mu, first_row, scale, frac, partner, edge, arg):
+def meet_one_width(u, deg, start, seller, mu, first_row, scale, frac, partner, edge, arg):
     """The meetings of buyers ``first_row + i`` (one each), up to the joint peak's exponent.
 
-    Matches, for normal curves of one width: ``u = rng.random(k); u *= deg;
+    Matches, for normal curves of one width and ``u = rng.random(k)``: ``u *= deg;
     pick = u.astype(int64); u -= pick; edge = start + pick; s = seller[edge];
     arg = mu[first_row:first_row + k] - mu[s]; arg = arg * arg; arg *= scale``
     (``frac`` receives ``u``, ``partner`` receives ``s``). The caller takes ``exp(arg)``.
 
-    Two passes, not one: the draws form one chain through the generator's state, and a loop
+    The uniforms come in as a column (a Generator costs about 10 microseconds a call to hand
+    over). Two passes, not one: the draws form one chain through the generator's state, and a loop
     that also reads ``seller[e]`` and ``mu[s]`` (random places in columns larger than the
     cache) leaves the processor few independent loads to overlap. With the reads in a loop
     of their own, every iteration's loads are independent. Measured with cold caches in a
@@ -61,7 +64,7 @@ def meet_one_width(rng, deg, start, seller, mu, first_row, scale, frac, partner,
     """
     k = deg.shape[0]
     for i in range(k):
-        x = rng.random() * deg[i]
+        x = u[i] * deg[i]
         pick = np.int64(x)
         frac[i] = x - pick
         edge[i] = start[i] + pick
@@ -113,3 +116,552 @@ def start_round(replenish, stock0, cash0, stock, cash, capacity, is_seller, rema
         if is_seller[i] and stock[i] < cap:
             cap = stock[i]
         remaining[i] = cap
+
+
+@numba.njit(cache=True, nogil=True)
+def double_auction_book(
+    who,
+    is_bid,
+    quote,
+    rem,
+    cash,
+    sellers,
+    b_ptr,
+    buyers,
+    s_ptr,
+    comp,
+    n_comp,
+    bounded,
+    floor,
+    ceiling,
+):
+    """The arrival loop of the continuous double auction, fused into one compiled pass.
+
+    Fuses, per arrival: the budget cap of a bid, the price-bound refusal, the search of the
+    trader's partners for the best standing quote on the other side (first in row order among
+    equals), the trade against it (which clears the book of that part of the network), or the
+    posting of the quote when it improves the trader's own. The same steps, in the same order,
+    as the Python loop in ``propensim.plugins._auctions.double_auction`` (kept as the reference
+    when numba is missing); ``rem`` and ``cash`` are updated in place. Returns the trades'
+    buyers, sellers and prices, in the order they were made.
+    """
+    n = rem.shape[0]
+    standing = np.zeros(n)
+    posted = np.full(n, -1, dtype=np.int64)
+    cleared = np.full(n_comp, -1, dtype=np.int64)
+    units = 0
+    for i in range(n):
+        if rem[i] > 0:
+            units += rem[i]
+    cap = min(units // 2 + 1, who.shape[0])  # a trade takes a unit from each side
+    out_b = np.empty(cap, dtype=np.int64)
+    out_s = np.empty(cap, dtype=np.int64)
+    out_p = np.empty(cap)
+    m = 0
+    for t in range(who.shape[0]):
+        i = who[t]
+        if rem[i] <= 0:
+            continue
+        c = comp[i]
+        x = quote[t]
+        fresh = cleared[c]
+        bid = is_bid[t]
+        if bid and x > cash[i]:
+            x = cash[i]
+        if bounded and not (floor <= x and x <= ceiling):
+            continue
+        best_j = -1
+        if bid:
+            best = np.inf
+            for e in range(b_ptr[i], b_ptr[i + 1]):
+                j = sellers[e]
+                if posted[j] > fresh and standing[j] < best:
+                    best = standing[j]
+                    best_j = j
+            if best_j >= 0 and best <= x:
+                out_b[m] = i
+                out_s[m] = best_j
+                out_p[m] = best
+                m += 1
+                rem[i] -= 1
+                rem[best_j] -= 1
+                cash[i] -= best
+                cleared[c] = t
+                continue
+        else:
+            best = -np.inf
+            for e in range(s_ptr[i], s_ptr[i + 1]):
+                j = buyers[e]
+                if posted[j] > fresh and standing[j] > best:
+                    best = standing[j]
+                    best_j = j
+            if best_j >= 0 and best >= x:
+                out_b[m] = best_j
+                out_s[m] = i
+                out_p[m] = best
+                m += 1
+                rem[best_j] -= 1
+                rem[i] -= 1
+                cash[best_j] -= best
+                cleared[c] = t
+                continue
+        if posted[i] > fresh and ((x <= standing[i]) if bid else (x >= standing[i])):
+            continue
+        standing[i] = x
+        posted[i] = t
+    return out_b[:m], out_s[:m], out_p[:m]
+
+
+# -- fused kernels of the round: one per rule ------------------------------------------------
+@numba.njit(cache=True, nogil=True)
+def _block_sum(a, lo, n):
+    """NumPy's pairwise sum of a block of at most 128 elements: 8 partial sums, then the rest."""
+    if n < 8:
+        res = -0.0
+        for i in range(lo, lo + n):
+            res += a[i]
+        return res
+    r0, r1, r2, r3 = a[lo], a[lo + 1], a[lo + 2], a[lo + 3]
+    r4, r5, r6, r7 = a[lo + 4], a[lo + 5], a[lo + 6], a[lo + 7]
+    stop = lo + n - n % 8
+    i = lo + 8
+    while i < stop:
+        r0 += a[i]
+        r1 += a[i + 1]
+        r2 += a[i + 2]
+        r3 += a[i + 3]
+        r4 += a[i + 4]
+        r5 += a[i + 5]
+        r6 += a[i + 6]
+        r7 += a[i + 7]
+        i += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while i < lo + n:
+        res += a[i]
+        i += 1
+    return res
+
+
+@numba.njit(cache=True, nogil=True)
+def _pairwise(a, lo, n):
+    """NumPy's pairwise sum of ``a[lo:lo + n]`` (``pairwise_sum_DOUBLE``), step for step.
+
+    Blocks of at most 128 elements (:func:`_block_sum`); above that the range is halved (the
+    first half a multiple of 8) and the halves' sums added: the very rounding of
+    ``ndarray.sum`` on a contiguous float64 column, so a fused kernel that sums gives numpy's
+    number bit for bit. The halving runs on an explicit stack (numba cannot cache recursion).
+    """
+    if n <= 128:
+        return _block_sum(a, lo, n)
+    task_lo = np.empty(256, dtype=np.int64)
+    task_n = np.empty(256, dtype=np.int64)  # -1: add the two sums on top of the value stack
+    vals = np.empty(128)
+    top = 0
+    nv = 0
+    task_lo[0] = lo
+    task_n[0] = n
+    top = 1
+    while top > 0:
+        top -= 1
+        t_lo = task_lo[top]
+        t_n = task_n[top]
+        if t_n < 0:
+            nv -= 1
+            vals[nv - 1] = vals[nv - 1] + vals[nv]
+        elif t_n <= 128:
+            vals[nv] = _block_sum(a, t_lo, t_n)
+            nv += 1
+        else:
+            n2 = t_n // 2
+            n2 -= n2 % 8
+            task_n[top] = -1
+            task_lo[top + 1] = t_lo + n2
+            task_n[top + 1] = t_n - n2
+            task_lo[top + 2] = t_lo
+            task_n[top + 2] = n2
+            top += 3
+    return vals[0]
+
+
+@numba.njit(cache=True, nogil=True)
+def np_sum(a):
+    """``a.sum()`` of a contiguous float64 column, with numpy's rounding (see _pairwise)."""
+    return 0.0 + _pairwise(a, 0, a.shape[0])
+
+
+@numba.njit(cache=True, nogil=True)
+def outcome_offset(role, stock, cash, capacity, traded, step, out):
+    """The force of ``OutcomeDrift``: who traded, who missed, and the push, in one pass.
+
+    Fuses ``_outcome_masks`` (traded; missed = could have traded: capacity, a seller with
+    stock, a buyer with cash) with ``step * where(traded, better, where(missed, -better, 0))``,
+    ``better`` being -1 for a buyer and +1 otherwise.
+    """
+    for i in range(role.shape[0]):
+        buyer = role[i] == 0
+        better = -1.0 if buyer else 1.0
+        if traded[i] > 0:
+            direction = better
+        elif (
+            capacity[i] > 0
+            and not (role[i] == 1 and stock[i] <= 0)
+            and not (buyer and cash[i] <= 0)
+        ):
+            direction = -better
+        else:
+            direction = 0.0
+        out[i] = step * direction
+
+
+@numba.njit(cache=True, nogil=True)
+def accept_one_width(
+    rng,
+    frac,
+    partner,
+    edge,
+    peak,
+    activity,
+    heights,
+    lonely,
+    threshold,
+    use_threshold,
+    first_row,
+    remaining,
+    cash,
+    mu,
+    sd,
+):
+    """The second half of a propensity-matching round (one meeting per buyer, one width).
+
+    Fuses the heights' product (``peak *= a_b; peak *= a_s``), the lonely buyers' mask, the
+    agreement test (``frac < peak``, or ``peak >= threshold``), the buyers' turns (one
+    ``rng.permutation`` of the agreements), the greedy acceptance in turn order (first agreement
+    of each seller with a unit left: ``_first_per_seller``) and the joint-curve prices of the
+    accepted trades (``(mu_b + mu_s) / 2 + sd z``). Returns ``(status, buyer, seller, price,
+    edge)``: status 0 no agreement, 1 trades, 2 a case it does not fuse (a buyer with a budget or
+    a seller with several units) -- then it has drawn nothing and the numpy path takes over.
+    """
+    k = frac.shape[0]
+    alone = np.zeros(k, dtype=np.bool_)
+    for j in range(lonely.shape[0]):
+        alone[lonely[j]] = True
+    hit = np.empty(k, dtype=np.int64)
+    nh = 0
+    for i in range(k):
+        p = peak[i]
+        if heights:
+            p = p * activity[first_row + i]
+            p = p * activity[partner[i]]
+        if alone[i]:
+            p = 0.0
+        agreed = (p >= threshold) if use_threshold else (frac[i] < p)
+        if agreed:
+            hit[nh] = i
+            nh += 1
+    empty_i = np.empty(0, dtype=np.int64)
+    if nh == 0:
+        return 0, empty_i, empty_i, np.empty(0), empty_i
+    for j in range(nh):
+        i = hit[j]
+        if np.isfinite(cash[first_row + i]) or remaining[partner[i]] > 1:
+            return 2, empty_i, empty_i, np.empty(0), empty_i
+    turn = rng.permutation(nh)
+    never = np.iinfo(np.int64).max
+    first = np.full(remaining.shape[0], never)
+    can = np.empty(nh, dtype=np.bool_)
+    for j in range(nh):
+        i = hit[j]
+        s = partner[i]
+        can[j] = remaining[first_row + i] > 0 and remaining[s] > 0
+        if can[j] and turn[j] < first[s]:
+            first[s] = turn[j]
+    m = 0
+    for j in range(nh):
+        if can[j] and first[partner[hit[j]]] == turn[j]:
+            hit[m] = hit[j]
+            m += 1
+    buyer = np.empty(m, dtype=np.int64)
+    seller = np.empty(m, dtype=np.int64)
+    where = np.empty(m, dtype=np.int64)
+    price = np.empty(m)
+    for j in range(m):
+        price[j] = rng.standard_normal()
+    for j in range(m):
+        i = hit[j]
+        b = first_row + i
+        s = partner[i]
+        buyer[j] = b
+        seller[j] = s
+        where[j] = edge[i]
+        price[j] = (mu[b] + mu[s]) * 0.5 + price[j] * sd
+    return 1, buyer, seller, price, where
+
+
+# -- metrics: one fused kernel per metric, sums rounded as numpy's (np_sum) ----------------------
+@numba.njit(cache=True, nogil=True)
+def mean_of(x):
+    """``MeanPrice``: ``x.mean()`` (NaN when empty)."""
+    return np_sum(x) / x.shape[0] if x.shape[0] else np.nan
+
+
+@numba.njit(cache=True, nogil=True)
+def weighted_price(price, q):
+    """``VolumeWeightedPrice``: ``q = quantity as float; sum(price q) / sum(q)`` (NaN if none)."""
+    m = price.shape[0]
+    qf = np.empty(m)
+    pq = np.empty(m)
+    for i in range(m):
+        qf[i] = float(q[i])
+        pq[i] = price[i] * qf[i]
+    total = np_sum(qf)
+    return np_sum(pq) / total if total > 0 else np.nan
+
+
+@numba.njit(cache=True, nogil=True)
+def price_spread(price, q, centre, use_centre):
+    """``PriceDispersion`` (about the weighted mean) and ``SmithAlpha``'s sigma_0 (about a centre).
+
+    Fuses ``sum(q)``, ``sum(price q) / sum(q)`` (unless ``use_centre``) and
+    ``sqrt(sum(q (price - centre)^2) / sum(q))``. NaN when ``sum(q) <= 0``.
+    """
+    m = price.shape[0]
+    qf = np.empty(m)
+    tmp = np.empty(m)
+    for i in range(m):
+        qf[i] = float(q[i])
+        tmp[i] = price[i] * qf[i]
+    total = np_sum(qf)
+    if not total > 0:
+        return np.nan
+    mean = centre if use_centre else np_sum(tmp) / total
+    for i in range(m):
+        d = price[i] - mean
+        tmp[i] = qf[i] * (d * d)
+    return np.sqrt(np_sum(tmp) / total)
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=True)
+def surplus_sums(value, buyer, seller, q, paid, got):
+    """``trade_surplus`` summed: ``(sum((v_b - paid) q), sum((got - c_s) q))``."""
+    m = buyer.shape[0]
+    gb = np.empty(m)
+    gs = np.empty(m)
+    for i in range(m):
+        qf = float(q[i])
+        gb[i] = (value[buyer[i]] - paid[i]) * qf
+        gs[i] = (got[i] - value[seller[i]]) * qf
+    return np_sum(gb), np_sum(gs)
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=True)
+def surplus_gini(value, buyer, seller, q, paid, got, n):
+    """``SurplusGini``: each trader's surplus (bincount over its trades), then its Gini.
+
+    Fuses ``trade_surplus``, ``bincount(buyer, gain_b) + bincount(seller, gain_s)`` and
+    ``welfare.gini`` (sort; ``2 sum(rank x) / (n sum(x)) - (n + 1) / n``; NaN for a
+    non-positive total).
+    """
+    per_b = np.zeros(n)
+    per_s = np.zeros(n)
+    for i in range(buyer.shape[0]):
+        qf = float(q[i])
+        per_b[buyer[i]] += (value[buyer[i]] - paid[i]) * qf
+    for i in range(buyer.shape[0]):
+        qf = float(q[i])
+        per_s[seller[i]] += (got[i] - value[seller[i]]) * qf
+    x = per_b + per_s
+    # Sorted: only the traders' entries need sorting; everyone else holds 0.0 (a sum of
+    # products is never -0.0), so the zeros go between the negative and the positive entries.
+    nz = np.empty(n)
+    k = 0
+    for i in range(n):
+        if x[i] != 0.0:
+            nz[k] = x[i]
+            k += 1
+    nz = np.sort(nz[:k])
+    neg = 0
+    while neg < k and nz[neg] < 0.0:
+        neg += 1
+    x[:neg] = nz[:neg]
+    x[neg : neg + n - k] = 0.0
+    x[neg + n - k :] = nz[neg:]
+    total = np_sum(x)
+    if n == 0 or total <= 0:
+        return np.nan
+    for i in range(n):
+        per_b[i] = float(i + 1) * x[i]
+    return 2.0 * np_sum(per_b) / (n * total) - (n + 1.0) / n
+
+
+@numba.njit(cache=True, nogil=True)
+def preference_gap(mu, role):
+    """``PreferenceGap``: ``mean(mu[sellers]) - mean(mu[buyers])`` (NaN without either side)."""
+    n = mu.shape[0]
+    mb = np.empty(n)
+    ms = np.empty(n)
+    nb = 0
+    ns = 0
+    for i in range(n):
+        if role[i] == 0:
+            mb[nb] = mu[i]
+            nb += 1
+        elif role[i] == 1:
+            ms[ns] = mu[i]
+            ns += 1
+    if nb == 0 or ns == 0:
+        return np.nan
+    return (0.0 + _pairwise(ms, 0, ns)) / ns - (0.0 + _pairwise(mb, 0, nb)) / nb
+
+
+@numba.njit(cache=True, nogil=True)
+def spring_energy(gamma, mu, value, sigma):
+    """``EntropicEnergy`` of normal curves: ``sum(gamma (mu - v)^2 / (2 sigma^2))``."""
+    n = mu.shape[0]
+    tmp = np.empty(n)
+    for i in range(n):
+        d = mu[i] - value[i]
+        s = sigma[i]
+        tmp[i] = (gamma[i] * (d * d)) / (2.0 * (s * s))
+    return np_sum(tmp)
+
+
+@numba.njit(cache=True, nogil=True)
+def same_units(role, capacity, stock, traded, value, old_value, old_units):
+    """Whether ``AllocativeEfficiency``'s cached benchmark still holds, in one pass.
+
+    Fuses ``units = where(buyer, capacity, minimum(capacity, stock + traded))`` and
+    ``array_equal(old_value, value) and array_equal(old_units, units)``.
+    """
+    for i in range(role.shape[0]):
+        if value[i] != old_value[i]:
+            return False
+        units = capacity[i]
+        if role[i] != 0:
+            start = stock[i] + traded[i]
+            if start < units:
+                units = start
+        if units != old_units[i]:
+            return False
+    return True
+
+
+# -- settle: the checks and the tallies of a batch of trades ------------------------------------
+@numba.njit(cache=True, nogil=True)
+def trades_valid(b, s, q, p, edge, role, ptr, seller_col, remaining, cash, cash_rtol):
+    """Whether a batch passes every check of ``check_trades``, in one pass (True or False).
+
+    Fuses the row range, the roles (buyer 0, seller 1), the edge hints (``ptr[b] <= edge <
+    ptr[b + 1]`` and ``seller_col[edge] == s``), ``q >= 1``, finite prices, units against
+    ``remaining`` (summed per trader) and, when a buyer has a budget, money spent against cash
+    (with the relative slack ``cash_rtol``). False says only "look again": the numpy check then
+    names the first offender, or accepts a batch whose wrong hint still lies on an edge.
+    """
+    m = b.shape[0]
+    n = role.shape[0]
+    budget = False
+    increasing = True
+    for i in range(m):
+        bi, si = b[i], s[i]
+        if bi < 0 or bi >= n or si < 0 or si >= n:
+            return False
+        if role[bi] != 0 or role[si] != 1:
+            return False
+        e = edge[i]
+        if e < ptr[bi] or e >= ptr[bi + 1] or seller_col[e] != si:
+            return False
+        if q[i] < 1 or not np.isfinite(p[i]):
+            return False
+        if np.isfinite(cash[bi]):
+            budget = True
+        if i and bi <= b[i - 1]:
+            increasing = False
+    units = np.zeros(n, dtype=np.int64)
+    for i in range(m):
+        units[s[i]] += q[i]
+        if not increasing:
+            units[b[i]] += q[i]
+        elif q[i] > remaining[b[i]]:
+            return False
+    for i in range(m):
+        if units[s[i]] > remaining[s[i]]:
+            return False
+        if not increasing and units[b[i]] > remaining[b[i]]:
+            return False
+    if budget:
+        spend = np.zeros(n)
+        for i in range(m):
+            spend[b[i]] += q[i] * p[i]
+        for j in range(n):
+            c = cash[j]
+            if np.isfinite(c) and spend[j] > c + cash_rtol * max(abs(c), 1.0):
+                return False
+    return True
+
+
+@numba.njit(cache=True, nogil=True)
+def tally(b, s, q, price, n):
+    """``RoundOutcome``'s per-trader tallies: units traded and the mean price, in one pass.
+
+    Fuses ``traded = bincount(b, q) + bincount(s, q)``, ``paid`` likewise with ``q price`` and
+    ``where(traded > 0, paid / traded, nan)`` (sums in trade order, as bincount's).
+    """
+    tb = np.zeros(n)
+    ts = np.zeros(n)
+    pb = np.zeros(n)
+    ps = np.zeros(n)
+    for i in range(b.shape[0]):
+        qf = float(q[i])
+        tb[b[i]] += qf
+        pb[b[i]] += qf * price[i]
+    for i in range(b.shape[0]):
+        qf = float(q[i])
+        ts[s[i]] += qf
+        ps[s[i]] += qf * price[i]
+    traded = np.empty(n, dtype=np.int64)
+    mean = np.empty(n)
+    for j in range(n):
+        t = tb[j] + ts[j]
+        traded[j] = np.int64(t)
+        mean[j] = (pb[j] + ps[j]) / t if t > 0 else np.nan
+    return traded, mean
+
+
+@numba.njit(cache=True, nogil=True)
+def pair_on_edges(rng, buyer, seller, units_b, units_s):
+    """The call auction's pairing of winning units along edges, in one compiled pass.
+
+    Fuses the eligible edges (both ends with units to place), their random order (one
+    ``rng.permutation``), the unit copies of each edge and the greedy acceptance of
+    ``greedy_accept`` in that order: an edge's copies come one after another, so the edge takes
+    ``min(units left at its buyer, units left at its seller)``. Returns the used edges' buyers,
+    sellers, quantities and positions, in the random order (as the numpy path lists them).
+    """
+    m = buyer.shape[0]
+    eligible = np.empty(m, dtype=np.int64)
+    k = 0
+    for e in range(m):
+        if units_b[buyer[e]] > 0 and units_s[seller[e]] > 0:
+            eligible[k] = e
+            k += 1
+    order = rng.permutation(k)
+    left_b = units_b.copy()
+    left_s = units_s.copy()
+    out_b = np.empty(k, dtype=np.int64)
+    out_s = np.empty(k, dtype=np.int64)
+    out_q = np.empty(k, dtype=np.int64)
+    out_e = np.empty(k, dtype=np.int64)
+    used = 0
+    for j in range(k):
+        e = eligible[order[j]]
+        b = buyer[e]
+        s = seller[e]
+        t = min(left_b[b], left_s[s])
+        if t > 0:
+            left_b[b] -= t
+            left_s[s] -= t
+            out_b[used] = b
+            out_s[used] = s
+            out_q[used] = t
+            out_e[used] = e
+            used += 1
+    return out_b[:used], out_s[:used], out_q[:used], out_e[:used]

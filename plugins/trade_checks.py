@@ -47,6 +47,26 @@ def check_trades(state: MarketState, trades: Trades) -> None:
     pop, net = state.population, state.network
     n = len(pop)
     b, s, p, q = trades.buyer, trades.seller, trades.price, trades.quantity
+    if trades.edge is not None and net.n_edges:
+        valid = acceleration.kernel("trades_valid")
+        if (
+            valid is not None
+            and _fits(n, pop, net, state.remaining)
+            and valid(
+                b,
+                s,
+                q,
+                p,
+                trades.edge,
+                pop.role,
+                net.buyer_ptr,
+                net.seller,
+                state.remaining,
+                pop.cash,
+                CASH_RTOL,
+            )
+        ):
+            return  # every check passed in one compiled pass; else the checks below say why
     b_lo, b_hi, s_lo, s_hi = b.min(), b.max(), s.min(), s.max()
     if min(b_lo, s_lo) < 0 or max(b_hi, s_hi) >= n:
         out_of_range = (b < 0) | (b >= n) | (s < 0) | (s >= n)  # shape: (n_trades,)
@@ -92,6 +112,17 @@ def check_trades(state: MarketState, trades: Trades) -> None:
         if overspent.any():
             i = _first(overspent)
             raise ValueError(f"buyer {i} spends {spend[i]:.6g} but has cash {cash[i]:.6g}")
+
+
+def _fits(n: int, pop: Population, net, remaining: np.ndarray) -> bool:
+    """True if the columns the compiled check reads have the lengths it assumes."""
+    return (
+        pop.role.shape == (n,)
+        and pop.cash.shape == (n,)
+        and remaining.shape == (n,)
+        and net.buyer_ptr.shape == (n + 1,)
+        and int(net.buyer_ptr[-1]) <= net.seller.shape[0]
+    )
 
 
 #: Key of the per-market cache entry holding the runs of buyer and seller rows.

@@ -26,12 +26,6 @@ from propensim.plugins.types import Trades
 pytest.importorskip("numba")
 
 
-@pytest.fixture(autouse=True)
-def every_length(monkeypatch):
-    """Let the kernels take columns of any length, so that small test markets use them."""
-    monkeypatch.setattr(acceleration, "MIN_LENGTH", 1)
-
-
 @pytest.fixture
 def forced(monkeypatch):
     """Kernels on from the first round (``PROPENSIM_KERNELS=numba``)."""
@@ -270,33 +264,44 @@ def test_markets_are_identical_with_and_without_kernels(monkeypatch, case):
         assert np.array_equal(a, b)
 
 
-def test_auto_mode_waits_for_enough_work_and_long_columns(monkeypatch):
-    monkeypatch.setattr(acceleration, "MIN_LENGTH", 4096)
+def test_the_choice_is_made_at_build_and_does_not_depend_on_work_or_length(monkeypatch):
+    # No process-wide counter and no length threshold: whatever has run before, a market of
+    # any size gets the kernels when numba imports, unless PROPENSIM_KERNELS=numpy.
+    assert not hasattr(acceleration, "count_work")
     monkeypatch.setenv("PROPENSIM_KERNELS", "auto")
-    monkeypatch.setitem(acceleration._state, "work", 0)
-    assert acceleration.compiled(10**6) is None  # no work done yet
-    acceleration.count_work(acceleration.WORK_BEFORE_COMPILED)
-    assert acceleration.compiled(4095) is None  # too short a column
-    assert acceleration.compiled(4096) is not None
-    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
-    monkeypatch.setitem(acceleration._state, "work", 0)
-    assert acceleration.compiled(4096) is not None and acceleration.compiled(4095) is None
+    for length in (1, 10, 4095, 10**6):
+        assert acceleration.compiled(length) is not None
+    small = build_market({"population": {"n_buyers": 5, "n_sellers": 5}}, seed=1, mesa=False)
+    assert small.compiled is True
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numpy")
+    assert acceleration.compiled(10**6) is None
+    off = build_market({"population": {"n_buyers": 5, "n_sellers": 5}}, seed=1, mesa=False)
+    assert off.compiled is False
 
 
-def test_small_runs_never_import_numba():
+def test_a_fresh_process_loads_the_kernels_from_the_disk_cache():
+    # cache=True: a second fresh process finds every kernel it calls already compiled on disk.
     code = (
-        "import json, sys\n"
+        "import json, os, warnings\n"
+        "warnings.simplefilter('ignore')\n"
         "from propensim.markets.build import build_market\n"
-        "cfg = {'population': {'n_buyers': 300, 'n_sellers': 300}, 'drift': {'name': 'anchor',"
-        " 'noise': 0.5}}\n"
-        "build_market(cfg, seed=1, mesa=False).run(50)\n"
-        "print(json.dumps('numba' in sys.modules))\n"
+        "from propensim.plugins import numba_loops\n"
+        "for clearing in ('propensity', 'double_auction'):\n"
+        "    cfg = {'population': {'n_buyers': 60, 'n_sellers': 60}, 'clearing': clearing,\n"
+        "           'network': {'name': 'erdos_renyi', 'mean_degree': 4},\n"
+        "           'drift': {'rules': [{'name': 'anchor'}, {'name': 'outcome'}], 'noise': 0.5}}\n"
+        "    build_market(cfg, seed=1, mesa=False).run(3)\n"
+        "fns = [f for f in vars(numba_loops).values() if hasattr(f, 'stats')]\n"
+        "used = [f for f in fns if f.signatures]\n"
+        "print(json.dumps([len(used), sum(len(f.stats.cache_misses) for f in used)]))\n"
     )
     env = {k: v for k, v in os.environ.items() if k != "PROPENSIM_KERNELS"}
-    res = subprocess.run(
-        [sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env
-    )
-    assert json.loads(res.stdout.strip().splitlines()[-1]) is False
+    for _ in range(2):  # the first may compile (a new machine or changed code); the second not
+        res = subprocess.run(
+            [sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env
+        )
+    used, misses = json.loads(res.stdout.strip().splitlines()[-1])
+    assert used >= 4 and misses == 0
 
 
 def test_a_bad_kernels_setting_is_named(monkeypatch):
