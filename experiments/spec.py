@@ -370,11 +370,28 @@ def _check_population(pop: dict[str, Any]) -> None:
     try:
         population = build_population(**tiny, rng=0)
         population.curves()
-    except (ValueError, TypeError) as exc:
-        field = _param_in_message(str(exc), list(pop))
-        if field is None and _param_in_message(str(exc), list(pop.get("curve_params") or ())):
+    except (ValueError, TypeError, OverflowError) as exc:
+        params = list(pop.get("curve_params") or ())
+        # "unknown parameter 'k' for the normal curve family" names a curve_params key, though
+        # the word "curve" would match the field curve first
+        field = "curve_params" if any(repr(k) in str(exc) for k in params) else None
+        field = field or _param_in_message(str(exc), list(pop))
+        if field is None and _param_in_message(str(exc), params):
             field = "curve_params"
+        if field is None:  # a derived number (a curve's mu) is named: the input behind it
+            field = next((k for k, v in pop.items() if not _all_finite(v)), None)
         raise _Problem(("population", field) if field else ("population",), str(exc)) from None
+
+
+def _all_finite(value: Any) -> bool:
+    """No NaN or infinity in a number, or in the numbers of a list or table."""
+    if isinstance(value, float):
+        return bool(np.isfinite(value))
+    if isinstance(value, Mapping):
+        return all(_all_finite(v) for v in value.values())
+    if isinstance(value, list | tuple):
+        return all(_all_finite(v) for v in value)
+    return True
 
 
 def _check_drift(drift: dict[str, Any]) -> None:
@@ -1149,7 +1166,6 @@ class _Builder:
         return out
 
 
-
 def _timed_rounds(configs: dict) -> int:
     """Windows (events) or weeks (shop) of the longest run configuration of a timed spec.
 
@@ -1171,13 +1187,16 @@ def _timed_rounds(configs: dict) -> int:
 def _parse_file(path: Path) -> tuple[dict, _Locator]:
     file = str(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        # utf-8-sig: a byte-order mark some editors write in front is not part of the TOML
+        text = path.read_text(encoding="utf-8-sig")
     except FileNotFoundError:
         raise SpecError("no such spec file", file=file) from None
     except UnicodeDecodeError as exc:
         raise SpecError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", file=file) from None
     except OSError as exc:
         raise SpecError(f"cannot read the spec file: {exc.strerror or exc}", file=file) from None
+    except ValueError as exc:  # a path the OS cannot take (a NUL character in it)
+        raise SpecError(f"cannot read the spec file: {exc}", file=file) from None
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
