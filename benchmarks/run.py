@@ -16,6 +16,8 @@ Benchmarks (``--only`` names):
 ``sweeps``    the 320-run design with ``mesa.batch_run`` (2 processes) against ``propensim run``
               (local pool, 2 workers); 1 against 2 workers; local pool against a local Dask cluster.
 ``scaling``   engine cost against network edges, traders and rounds.
+``round``     microseconds per round of a 1e3-trader market with the default metrics and anchor +
+              outcome drift (compiled kernels and numpy alone, each in its own process).
 
 Every timing is a median over repeats, the engine and the plain model timed in turns within the
 same run (the machine is shared and noisy). Build time is measured apart from the per-round time.
@@ -185,12 +187,16 @@ def side_by_side(builders, repeats, min_time):
     return timed
 
 
-def _build_engine(n, clearing, kw, kernels):
+def _build_engine(n, clearing, kw, kernels, full=False):
     from propensim.markets.build import build_market
 
-    # The steady state of a long run: the compiled loops on ("numba"), or numpy alone.
+    # The compiled kernels ("numba": what every market gets when numba imports), or numpy alone.
     os.environ["PROPENSIM_KERNELS"] = kernels
-    return build_market(engine_config(n, clearing, **kw), seed=12345, mesa=False)
+    config = engine_config(n, clearing, **kw)
+    if full:  # the default metrics, anchor + outcome drift
+        del config["metrics"]
+        config["drift"] = {"rules": [{"name": "anchor"}, {"name": "outcome"}], "noise": 0.5}
+    return build_market(config, seed=12345, mesa=False)
 
 
 def _build_plain(model_cls_name, n, extra):
@@ -199,10 +205,10 @@ def _build_plain(model_cls_name, n, extra):
     return getattr(plain_mesa, model_cls_name)(**plain_params(n, **extra), rng=12345)
 
 
-def _engine_builder(n, clearing, kernels="numba", **kw):
+def _engine_builder(n, clearing, kernels="numba", full=False, **kw):
     import functools
 
-    return functools.partial(_build_engine, n, clearing, kw, kernels)
+    return functools.partial(_build_engine, n, clearing, kw, kernels, full)
 
 
 def _plain_builder(model_cls, n, **extra):
@@ -303,9 +309,9 @@ def bench_matching(cfg):
         "volume and mean price; Erdos-Renyi bipartite network, mean degree 10"
     )
     notes.append(
-        "engine = the steady state of a long run, compiled loops on (PROPENSIM_KERNELS=numba; "
-        "the default 'auto' turns them on after 2e7 trader-rounds); engine_numpy_round_s and "
-        "ratio_numpy = numpy alone. Both give identical numbers"
+        "engine = compiled kernels (what every market gets when numba imports, chosen at build); "
+        "engine_numpy_round_s and ratio_numpy = numpy alone (PROPENSIM_KERNELS=numpy). Both "
+        "give identical numbers"
     )
     startup = _kernels_startup()
     notes.append(
@@ -315,7 +321,7 @@ def bench_matching(cfg):
     return {
         "rows": rows,
         "notes": notes,
-        "targets": {"ratio_at_1e5": 100},
+        "targets": {"ratio_at_1e3": 50, "ratio_at_1e5": 150},
         "kernels_startup_s": startup,
     }
 
@@ -325,8 +331,6 @@ import os, time
 os.environ["PROPENSIM_KERNELS"] = "numba"
 import numpy as np
 from propensim.markets.build import build_market
-from propensim.plugins import acceleration
-acceleration.MIN_LENGTH = 1  # a tiny market, so that every kernel is called once
 m = build_market({"population": {"n_buyers": 50, "n_sellers": 50},
                   "drift": {"name": "anchor", "noise": 0.5}}, seed=1, mesa=False)
 t0 = time.perf_counter()
@@ -381,9 +385,48 @@ def bench_auctions(cfg):
     rows += r
     notes += n_
     notes.append(
-        "double auction: zi_c quotes, 20 quote arrivals per trader per round on both sides"
+        "double auction: zi_c quotes, 20 quote arrivals per trader per round on both sides; "
+        "the engine's book loop is compiled (numba_loops.double_auction_book)"
     )
-    return {"rows": rows, "notes": notes}
+    return {"rows": rows, "notes": notes, "targets": {"ratio_at_1e4": 30}}
+
+
+# -- 1b. a small market's round -------------------------------------------------------------------
+def bench_round(cfg):
+    """Microseconds per round at 1e3 traders: default metrics, anchor + outcome drift."""
+    n = 10**3
+    builders = {
+        "engine": _engine_builder(n, {"name": "propensity", "meetings": 1}, full=True),
+        "engine_numpy": _engine_builder(
+            n, {"name": "propensity", "meetings": 1}, kernels="numpy", full=True
+        ),
+    }
+    repeats = max(cfg.repeats, 7)
+    timed = side_by_side(builders, repeats, cfg.min_time)
+    rows = []
+    for label, t in timed.items():
+        rows.append(
+            {
+                "bench": "round_1e3",
+                "side": label,
+                "traders": n,
+                "round_us": t.round_s * 1e6,
+                "round_us_min": min(t.rounds) * 1e6,
+                "round_us_max": max(t.rounds) * 1e6,
+                "cpu_us": t.cpu_s * 1e6,
+                "build_s": t.build_s,
+            }
+        )
+        _progress(rows[-1])
+    return {
+        "rows": rows,
+        "notes": [
+            "propensity matching (1 meeting per buyer) + anchor and outcome drift (noise 0.5) + "
+            "the 11 default metrics, 1e3 traders, Erdos-Renyi mean degree 10, no ledger; "
+            f"median of {repeats} blocks of >= {cfg.min_time} s (min and max beside it)"
+        ],
+        "targets": {"round_us": 60},
+    }
 
 
 # -- 3. memory ------------------------------------------------------------------------------------
@@ -644,10 +687,8 @@ def _calibrated_rounds(n, target_s, tmp):
     return rounds
 
 
-#: The workers benchmark runs with the compiled loops on from the first round. Under the default
-#: ("auto": on after 2e7 trader-rounds in a process) each worker process would run its first
-#: couple of runs on numpy: two workers would do more slow runs than one, and the speed-up
-#: would measure that rather than the runner.
+#: The workers benchmark pins the compiled kernels (the default when numba imports), so that a
+#: missing or broken numba shows as an error rather than as a slower machine.
 WORKERS_ENV = {"PROPENSIM_KERNELS": "numba"}
 
 
@@ -762,7 +803,12 @@ def bench_sweeps(cfg):
     return {
         "rows": rows,
         "notes": notes,
-        "targets": {"ratio": 10, "speedup": 1.8, "dask_over_pool": 1.10},
+        "targets": {
+            "ratio": 10,
+            "speedup": 1.8,
+            "dask_over_pool": 1.10,
+            "propensim_pool_s": 3.0,
+        },
     }
 
 
@@ -852,6 +898,7 @@ BENCHMARKS = {
     "memory": bench_memory,
     "sweeps": bench_sweeps,
     "scaling": bench_scaling,
+    "round": bench_round,
 }
 
 

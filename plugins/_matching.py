@@ -141,12 +141,34 @@ def propensity_round(
     # width for every trader (the default, and kept by drift rules that leave widths alone) the
     # variances are scalars and broadcast.
     var_b = float(sigma[0]) ** 2 if one_width else None
-    fast = None
+    fast = ready = None
     if one_width and isinstance(own, slice) and not bounded:  # compiled when available
         fast = acceleration.meet_one_width(
             rng, deg, start, net.seller, pop.mu, own.start, -0.5 / (var_b + var_b)
         )
-    if fast is not None:
+    elif one_width and not bounded and state.meetings is None:  # buyers by row: compiled too
+        whole = acceleration.meet_and_accept_rows(
+            rng,
+            rows,
+            deg,
+            start,
+            net.seller,
+            pop.mu,
+            -0.5 / (var_b + var_b),
+            pop.activity,
+            threshold,
+            state.remaining,
+            pop.cash,
+            math.sqrt(0.5 * var_b),
+        )
+        if whole is not None:
+            (status, buyer, seller, price, where), ready = whole
+            if status == 0:
+                return Trades.empty()
+            if status == 1:
+                return Trades(buyer, seller, price, np.ones(buyer.size, dtype=np.int64), where)
+            u, s, edge, peak = ready  # a budget: the numpy path goes on from the same meetings
+    if ready is None and fast is not None:
         u, s, edge, peak = fast
         np.exp(peak, out=peak)
         if meetings == 1 and state.meetings is None:  # the rest of the round in one pass
@@ -167,7 +189,7 @@ def propensity_round(
             if rest is not None and rest[0] == 1:
                 _, buyer, seller, price, where = rest
                 return Trades(buyer, seller, price, np.ones(buyer.size, dtype=np.int64), where)
-    else:
+    elif ready is None:
         # Meetings in row order (buyer, then meeting number): column reads walk memory forward.
         u = rng.random(rows.size)  # shape: (k,) on [0, 1 - 2^-53]
         u *= deg  # rounded u d stays below d (d < 2^53): no pick can run past the buyer's edges

@@ -299,3 +299,49 @@ def kernel(name: str):
     """
     module = compiled()
     return None if module is None else getattr(module, name)
+
+
+def meet_and_accept_rows(
+    rng, rows, deg, start, seller, mu, scale, activity, threshold, remaining, cash, sd
+):
+    """A whole propensity round for meetings listed by buyer row, compiled, or None.
+
+    ``numba_loops.meet_rows``, numpy's ``exp``, then ``numba_loops.accept_rows``. Returns
+    ``(status, buyer, seller, price, edge)``; status 2: not fused (nothing drawn but the
+    uniforms, which the caller passes on to the numpy path as ``frac, partner, edge, peak``).
+    """
+    module = compiled()
+    if module is None:
+        return None
+    k, n = rows.shape[0], mu.shape[0]
+    if (
+        deg.shape != (k,)
+        or start.shape != (k,)
+        or remaining.shape != (n,)
+        or cash.shape != (n,)
+        or activity.shape != (n,)
+        or (k and (rows.min() < 0 or rows.max() >= n))
+    ):
+        raise ValueError("meet_and_accept_rows: rows outside the population")  # no bounds checks
+    frac, arg = rng.random(k), np.empty(k)
+    partner, edge = np.empty(k, dtype=np.int64), np.empty(k, dtype=np.int64)
+    module.meet_rows(frac, deg, start, seller, mu, rows, float(scale), frac, partner, edge, arg)
+    np.exp(arg, out=arg)
+    use_threshold = threshold is not None
+    out = module.accept_rows(
+        rng,
+        frac,
+        partner,
+        edge,
+        arg,
+        activity,
+        bool(activity.min() < 1.0),
+        rows,
+        float(threshold) if use_threshold else 0.0,
+        use_threshold,
+        remaining,
+        cash,
+        mu,
+        float(sd),
+    )
+    return out, (frac, partner, edge, arg)

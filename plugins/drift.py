@@ -39,6 +39,7 @@ integral", Phys. Rev. E 54:2084 (1996).
 from __future__ import annotations
 
 import math
+import weakref
 from collections.abc import Iterable
 from typing import ClassVar
 
@@ -212,6 +213,10 @@ def _outcome_masks(state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarra
 
 
 # -- the base of the force rules -----------------------------------------------------------------
+#: The one-rule sum each force rule applies itself with (kept, so its checks run once).
+_ALONE: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+
+
 class _ForceRule:
     """Shared behaviour of the built-in force rules (not part of the contract)."""
 
@@ -238,8 +243,12 @@ class _ForceRule:
         self, state: MarketState, outcome: RoundOutcome, rng: np.random.Generator
     ) -> tuple[np.ndarray, np.ndarray]:
         """Apply the rule alone: ``combine([self], eta=self.eta, noise=self.noise, dt=self.dt)``."""
-        step = DriftSum(rules=(self,), eta=self.eta, noise=self.noise, dt=self.dt)
-        return step.apply(state, outcome, rng)
+        params = (self.eta, self.noise, self.dt)
+        kept = _ALONE.get(self)
+        if kept is None or kept[0] != params:  # one sum per rule and parameters, checked once
+            kept = (params, DriftSum(rules=(self,), eta=self.eta, noise=self.noise, dt=self.dt))
+            _ALONE[self] = kept
+        return kept[1].apply(state, outcome, rng)
 
     def __repr__(self) -> str:
         params = ", ".join(f"{k}={v!r}" for k, v in vars(self).items() if k != "plugin_name")

@@ -665,3 +665,111 @@ def pair_on_edges(rng, buyer, seller, units_b, units_s):
             out_e[used] = e
             used += 1
     return out_b[:used], out_s[:used], out_q[:used], out_e[:used]
+
+
+@numba.njit(cache=True, nogil=True)
+def meet_rows(u, deg, start, seller, mu, rows, scale, frac, partner, edge, arg):
+    """:func:`meet_one_width` for buyers listed by row (``rows[i]``, repeated per meeting).
+
+    Matches ``u *= deg; pick = u.astype(int64); u -= pick; edge = start + pick;
+    s = seller[edge]; arg = (mu[rows] - mu[s])^2 * scale``.
+    """
+    k = deg.shape[0]
+    for i in range(k):
+        x = u[i] * deg[i]
+        pick = np.int64(x)
+        frac[i] = x - pick
+        edge[i] = start[i] + pick
+    for i in range(k):
+        s = seller[edge[i]]
+        partner[i] = s
+        gap = mu[rows[i]] - mu[s]
+        arg[i] = gap * gap * scale
+
+
+@numba.njit(cache=True, nogil=True)
+def accept_rows(
+    rng,
+    frac,
+    partner,
+    edge,
+    peak,
+    activity,
+    heights,
+    rows,
+    threshold,
+    use_threshold,
+    remaining,
+    cash,
+    mu,
+    sd,
+):
+    """The second half of a propensity round for meetings listed by buyer row (any meetings).
+
+    Fuses the heights' product, the agreement test, the turns (one ``rng.permutation`` of the
+    buyers with an agreement; a buyer's agreements share its turn, in meeting order), the
+    greedy acceptance in turn order while both sides have units left (``greedy_accept``, which
+    gives the same set as this loop) and the prices of the accepted meetings, in position order.
+    Returns ``(status, buyer, seller, price, edge)`` as :func:`accept_one_width` (status 2, with
+    nothing drawn, when a buyer with an agreement has a budget).
+    """
+    k = frac.shape[0]
+    hit = np.empty(k, dtype=np.int64)
+    nh = 0
+    for i in range(k):
+        p = peak[i]
+        if heights:
+            p = p * activity[rows[i]]
+            p = p * activity[partner[i]]
+        agreed = (p >= threshold) if use_threshold else (frac[i] < p)
+        if agreed:
+            hit[nh] = i
+            nh += 1
+    empty_i = np.empty(0, dtype=np.int64)
+    if nh == 0:
+        return 0, empty_i, empty_i, np.empty(0), empty_i
+    for j in range(nh):
+        if np.isfinite(cash[rows[hit[j]]]):
+            return 2, empty_i, empty_i, np.empty(0), empty_i
+    run_start = np.empty(nh + 1, dtype=np.int64)  # agreements of one buyer: one run
+    runs = 0
+    for j in range(nh):
+        if j == 0 or rows[hit[j]] != rows[hit[j - 1]]:
+            run_start[runs] = j
+            runs += 1
+    run_start[runs] = nh
+    turn = rng.permutation(runs)  # turn[r]: the turn of run r
+    by_turn = np.empty(runs, dtype=np.int64)
+    for r in range(runs):
+        by_turn[turn[r]] = r
+    left = remaining.copy()
+    accepted = np.zeros(nh, dtype=np.bool_)
+    m = 0
+    for t in range(runs):
+        r = by_turn[t]
+        for j in range(run_start[r], run_start[r + 1]):
+            b = rows[hit[j]]
+            s = partner[hit[j]]
+            if left[b] > 0 and left[s] > 0:
+                left[b] -= 1
+                left[s] -= 1
+                accepted[j] = True
+                m += 1
+    buyer = np.empty(m, dtype=np.int64)
+    seller = np.empty(m, dtype=np.int64)
+    where = np.empty(m, dtype=np.int64)
+    price = np.empty(m)
+    for j in range(m):
+        price[j] = rng.standard_normal()
+    c = 0
+    for j in range(nh):
+        if accepted[j]:
+            i = hit[j]
+            b = rows[i]
+            s = partner[i]
+            buyer[c] = b
+            seller[c] = s
+            where[c] = edge[i]
+            price[c] = (mu[b] + mu[s]) * 0.5 + price[c] * sd
+            c += 1
+    return 1, buyer, seller, price, where
