@@ -320,19 +320,35 @@ def pilot_seconds(plans, budget: float = 0.05) -> tuple[float, int]:
     The first market is built twice (the first build pays one-time imports); each pilot runs one
     warm-up round, then times rounds until its share of ``budget`` seconds or the plan's rounds
     are used up; the estimate is build time + rounds x time per round. Uses the array engine
-    (no Mesa import). Worker start-up (a few seconds per process) is not included.
+    on numpy alone (no Mesa or numba import, so ``check`` starts fast; the compiled kernels give
+    the same numbers and are as fast or faster, so the estimate errs long). Worker start-up (a few
+    seconds per process) is not included.
 
     Returns
     -------
     (float, int)
         Mean estimated seconds per run over the pilots, and rounds timed.
     """
+    import os
     import warnings
 
     from propensim.experiments.runner import _market_config
     from propensim.markets.build import build_market
 
     firsts = list({p.arm: p for p in reversed(plans)}.values())[::-1][:8]
+    saved = os.environ.get("PROPENSIM_KERNELS")
+    os.environ["PROPENSIM_KERNELS"] = "numpy"  # markets choose their kernels when built
+    try:
+        return _pilots(firsts, budget, build_market, _market_config, warnings)
+    finally:
+        if saved is None:
+            os.environ.pop("PROPENSIM_KERNELS", None)
+        else:
+            os.environ["PROPENSIM_KERNELS"] = saved
+
+
+def _pilots(firsts, budget, build_market, _market_config, warnings) -> tuple[float, int]:
+    """The pilots of :func:`pilot_seconds` (its first plan per arm)."""
     estimates, timed_total = [], 0
     for i, plan in enumerate(firsts):
         config = _market_config(plan)
