@@ -339,10 +339,10 @@ class _LocalPool:
         """How a worker process ended, when one did (exit code or signal), else None."""
         import signal
 
-        for proc in self._seen.values():
-            code = proc.exitcode
-            if code is None or code == 0:
-                continue
+        # The pool sends SIGTERM to the other workers once one has died: name the first cause.
+        ended = [p.exitcode for p in self._seen.values() if p.exitcode not in (None, 0)]
+        ended.sort(key=lambda code: code == -signal.SIGTERM)
+        for code in ended:
             if code < 0:
                 name = signal.Signals(-code).name if -code in signal.valid_signals() else -code
                 why = " (the kernel's out-of-memory killer sends it)" if -code == 9 else ""
