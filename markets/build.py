@@ -90,6 +90,27 @@ def build_interventions(conf) -> list:
     return [_plugin_from("interventions", item) for item in conf]
 
 
+def build_population_and_network(config: Mapping, streams: Mapping):
+    """The population and its network from a configuration, each from its own named stream.
+
+    Every mode (rounds, events, shop) starts from these, so runs with the same seed start from
+    the same market.
+    """
+    from propensim.plugins.networks import build_network
+
+    pop_conf = dict(config.get("population") or {})
+    missing = [k for k in ("n_buyers", "n_sellers") if k not in pop_conf]
+    if missing:
+        raise ValueError(f"population.{missing[0]} is required (a whole number >= 0)")
+    population = build_population(rng=streams["population"], **pop_conf)
+    net_conf = config.get("network", "complete")
+    if isinstance(net_conf, str):
+        net_conf = {"name": net_conf}
+    net_params = {k: v for k, v in net_conf.items() if k != "name"}
+    network = build_network(net_conf["name"], population.role, streams["network"], **net_params)
+    return population, network
+
+
 def build_market(config: Mapping, seed=None, *, mesa: bool = True):
     """Build a market from a plain configuration mapping (the shape a spec file resolves to).
 
@@ -119,7 +140,6 @@ def build_market(config: Mapping, seed=None, *, mesa: bool = True):
     Market or MarketEngine
     """
     from propensim.markets.engine import MarketEngine
-    from propensim.plugins.networks import build_network
 
     mode = (config.get("market") or {}).get("mode", "rounds")
     if mode in ("events", "shop"):  # continuous time: markets/events.py, markets/supply_chain.py
@@ -129,16 +149,7 @@ def build_market(config: Mapping, seed=None, *, mesa: bool = True):
             config, seed
         )
     streams = spawn_streams(seed)
-    pop_conf = dict(config.get("population") or {})
-    missing = [k for k in ("n_buyers", "n_sellers") if k not in pop_conf]
-    if missing:
-        raise ValueError(f"population.{missing[0]} is required (a whole number >= 0)")
-    population = build_population(rng=streams["population"], **pop_conf)
-    net_conf = config.get("network", "complete")
-    if isinstance(net_conf, str):
-        net_conf = {"name": net_conf}
-    net_params = {k: v for k, v in net_conf.items() if k != "name"}
-    network = build_network(net_conf["name"], population.role, streams["network"], **net_params)
+    population, network = build_population_and_network(config, streams)
     clearing = _plugin_from("clearing", config.get("clearing", "propensity"))
     drift = build_drift(config.get("drift"))
     options = dict(config.get("market") or {})

@@ -61,8 +61,13 @@ from contextlib import contextmanager
 
 import numpy as np
 
-from propensim.agents.population import SELLER, Population, build_population
-from propensim.markets.build import build_drift, build_interventions, spawn_streams
+from propensim.agents.population import SELLER, Population
+from propensim.markets.build import (
+    build_drift,
+    build_interventions,
+    build_population_and_network,
+    spawn_streams,
+)
 from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
@@ -759,19 +764,9 @@ def build_event_market(config: Mapping, seed=None) -> EventMarket:
         so an event run and a round run with the same seed start from the same market.
     """
     from propensim.agents.population import _draw
-    from propensim.plugins.networks import build_network
 
     streams = spawn_streams(seed)
-    pop_conf = dict(config.get("population") or {})
-    missing = [k for k in ("n_buyers", "n_sellers") if k not in pop_conf]
-    if missing:
-        raise ValueError(f"population.{missing[0]} is required (a whole number >= 0)")
-    population = build_population(rng=streams["population"], **pop_conf)
-    net_conf = config.get("network", "complete")
-    if isinstance(net_conf, str):
-        net_conf = {"name": net_conf}
-    net_params = {k: v for k, v in net_conf.items() if k != "name"}
-    network = build_network(net_conf["name"], population.role, streams["network"], **net_params)
+    population, network = build_population_and_network(config, streams)
     drift = build_drift(config.get("drift"))
     ev = {**EVENT_DEFAULTS, **dict(config.get("events") or {})}
     unknown = sorted(set(ev) - set(EVENT_DEFAULTS))
