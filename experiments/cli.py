@@ -43,6 +43,19 @@ class InputError(ValueError):
     """Bad input found by the command line itself."""
 
 
+def _dash_hint(message: str, argv) -> str:
+    """Name a value that argparse took for an option because it starts with '-'."""
+    words = list(sys.argv[1:] if argv is None else argv)
+    dashed = [w for w in words if w.startswith("-") and not w.startswith("--") and len(w) > 1]
+    dashed = [w for w in dashed if not (len(w) == 2 and w[1].isalpha())]  # -h and friends
+    if not dashed or "required" not in message:
+        return message
+    return (
+        f"{message}; {dashed[0]!r} starts with '-' and was read as an option: "
+        f"write ./{dashed[0]} for a folder or file"
+    )
+
+
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # one line, exit 2, no usage block
         raise InputError(f"{message} (see propensim --help)")
@@ -813,7 +826,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code (0 ok, 1 runs failed, 2 bad input)."""
     parser = build_parser()
     try:
-        args = parser.parse_args(argv)
+        try:
+            args = parser.parse_args(argv)
+        except InputError as exc:
+            raise InputError(_dash_hint(str(exc), argv)) from None
         if args.command is None:
             parser.print_help()
             return 0
