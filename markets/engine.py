@@ -30,7 +30,7 @@ from propensim.markets.build import (  # noqa: F401  (build_market etc. also imp
     spawn_streams,
 )
 from propensim.markets.recorder import Recorder
-from propensim.markets.schedule import PricePolicy, Schedule
+from propensim.markets.schedule import PricePolicy, Schedule, TraderRemoval
 from propensim.plugins import acceleration, registry
 from propensim.plugins.types import MarketState, TradingNetwork
 
@@ -50,7 +50,7 @@ DEFAULT_METRICS = (
 )
 
 
-class MarketEngine:
+class MarketEngine(TraderRemoval):
     """The round loop of a market, on arrays only (no Mesa import: cheap to start in a worker).
 
     :class:`Market` is the same engine as a ``mesa.Model``; sweeps use the engine directly
@@ -225,20 +225,6 @@ class MarketEngine:
         """Clear with ``rule`` from the next clearing on."""
         self.clearing = rule
         self.state.cache.clear()
-
-    def remove_traders(self, rows) -> None:
-        """Take traders out of the market: they lose every trading edge (their rows stay)."""
-        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
-        gone = np.zeros(len(self.population), dtype=bool)
-        gone[rows] = True
-        self.present &= ~gone
-        net = self.network
-        self.replace_network(net.keep_edges(~(gone[net.buyer] | gone[net.seller])))
-
-    def restore_traders(self, rows, network: TradingNetwork) -> None:
-        """Bring traders back with the network they return to."""
-        self.present[np.asarray(rows, dtype=np.int64)] = True
-        self.replace_network(network)
 
     @property
     def traders(self) -> list:

@@ -68,6 +68,7 @@ from propensim.markets.build import (
     build_population_and_network,
     spawn_streams,
 )
+from propensim.markets.schedule import TraderRemoval
 from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
@@ -131,7 +132,7 @@ def _check_whole(name: str, value, minimum: int = 1) -> int:
     return int(value)
 
 
-class EventMarket:
+class EventMarket(TraderRemoval):
     """A market in continuous time: one channel per buyer-seller edge, simulated exactly.
 
     Parameters
@@ -338,20 +339,6 @@ class EventMarket:
         self.state.cache.clear()
         self.state.equilibrium_price = _equilibrium_price(population)
         self._setup_channels()
-
-    def remove_traders(self, rows) -> None:
-        """Take traders out: they lose every channel (their rows stay)."""
-        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
-        gone = np.zeros(len(self.population), dtype=bool)
-        gone[rows] = True
-        self.present &= ~gone
-        net = self.network
-        self.replace_network(net.keep_edges(~(gone[net.buyer] | gone[net.seller])))
-
-    def restore_traders(self, rows, network: TradingNetwork) -> None:
-        """Bring traders back with the network they return to."""
-        self.present[np.asarray(rows, dtype=np.int64)] = True
-        self.replace_network(network)
 
     def _setup_channels(self) -> None:
         net, k = self.network, _kernels()

@@ -12,6 +12,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+import numpy as np
+
 
 @dataclass
 class PricePolicy:
@@ -101,3 +103,25 @@ class Schedule:
     def active(self) -> list:
         """The interventions in force now."""
         return [item for item, on in zip(self.interventions, self._active, strict=True) if on]
+
+
+class TraderRemoval:
+    """Taking traders out and bringing them back, for any market with ``replace_network``.
+
+    A removed trader keeps its row (so it can be followed as "left") and loses every trading
+    edge; ``present`` marks who is still in the market. Round and event markets share it.
+    """
+
+    def remove_traders(self, rows) -> None:
+        """Take traders out of the market: they lose every trading edge (their rows stay)."""
+        rows = np.asarray(rows, dtype=np.int64).reshape(-1)
+        gone = np.zeros(len(self.population), dtype=bool)
+        gone[rows] = True
+        self.present &= ~gone
+        net = self.network
+        self.replace_network(net.keep_edges(~(gone[net.buyer] | gone[net.seller])))
+
+    def restore_traders(self, rows, network) -> None:
+        """Bring traders back with the network they return to."""
+        self.present[np.asarray(rows, dtype=np.int64)] = True
+        self.replace_network(network)
