@@ -308,12 +308,12 @@ def _sweep(spec, out, *, workers, scheduler=None, dask_local=None, fail_fast=Fal
 
 def cmd_run(args) -> int:
     """``propensim run``."""
-    from propensim.experiments.spec import load_spec
-
-    if args.scheduler is None:
+    if args.scheduler is None:  # first: its imports overlap importing and reading the spec
         from propensim.experiments.runner import prestart_workers
 
-        prestart_workers(args.workers, args.dask_local)  # its imports overlap reading the spec
+        prestart_workers(args.workers, args.dask_local)
+    from propensim.experiments.spec import load_spec
+
     spec = load_spec(args.spec, args.overrides)
     _, code = _sweep(
         spec,

@@ -395,7 +395,9 @@ def _main_script_hidden() -> Iterator[None]:
 #: in milliseconds instead of paying their imports itself. Not pandas: workers send their tables
 #: as column dicts (see _run_batch), and the 0.35 s of importing pandas would delay the server,
 #: and with it the first run. Not scipy.optimize (0.16 s): only the efficiency metric of small
-#: markets needs it, and a worker that does imports it then.
+#: markets needs it, and a worker that does imports it then. Last, the warm-up: numba and the
+#: compiled kernels of a common market, loaded from the disk cache once in the server instead
+#: of in every worker before its first run (about 0.4 s each; see _worker_warmup).
 WORKER_PRELOAD = (
     "numpy",
     "scipy.sparse.csgraph",
@@ -405,6 +407,7 @@ WORKER_PRELOAD = (
     "propensim.plugins.drift",
     "propensim.plugins.metrics",
     "propensim.plugins.networks",
+    "propensim.experiments._worker_warmup",
 )
 
 
