@@ -103,7 +103,8 @@ class RunResult:
     rounds, traders, ledger : pandas.DataFrame or None
         Round table, sampled trader states and trades, when the plan collects them. (On their
         way back from a worker they travel as column dicts, name -> array, so that workers never
-        import pandas; the sweep turns them into DataFrames on arrival.)
+        import pandas; a sweep hands them to the store as they are, which writes them with
+        pyarrow, and :meth:`Batch.wait` turns them into DataFrames.)
     error_type, error_message, traceback : str or None
         For a failed run: the exception's class name, its message, the formatted traceback.
     duration : float
@@ -885,7 +886,6 @@ def _sweep(
             batch = [queue.popleft() for _ in range(min(n, len(queue)))]
             inflight[backend.submit(batch)] = batch
         if not warmed:  # import what flushing needs while the first tasks run, not after
-            import pandas  # noqa: F401
             import pyarrow.parquet  # noqa: F401
 
             warmed = True
@@ -906,7 +906,8 @@ def _sweep(
                         "resume",
                         store,
                     ) from None
-            results = [r._to_frames() for r in results]
+            # Tables stay column dicts: the store writes them with pyarrow, without building a
+            # DataFrame per run and concatenating them (most of a flush's time before).
             batcher.observe(results)
             n_rows = n_failed = 0
             for r in results:

@@ -116,6 +116,50 @@ def _parquet_bytes(table) -> bytes:
     return sink.getvalue().to_pybytes()
 
 
+def _n_rows(table) -> int:
+    """Rows of a table that is a DataFrame or a column dict (name -> array)."""
+    if isinstance(table, dict):
+        return len(next(iter(table.values()))) if table else 0
+    return len(table)
+
+
+#: numpy kinds whose arrays arrow takes as they are, with the types pandas would give them.
+_PLAIN_KINDS = "biuf"
+
+
+def _arrow_columns(run_id: str, columns):
+    """A column dict as an arrow table with ``run_id`` first, typed as the pandas path types it.
+
+    Without pandas (the sweep's tables arrive as column dicts): run_id is a ``large_string``
+    column, numbers and booleans keep their numpy types. None for a DataFrame or for columns
+    of other kinds (strings, objects): those go the pandas way (:func:`_pandas_part`).
+    """
+    import numpy as np
+    import pyarrow as pa
+
+    if not isinstance(columns, dict):
+        return None
+    arrays = {k: np.asarray(v) for k, v in columns.items()}
+    if any(a.ndim != 1 or a.dtype.kind not in _PLAIN_KINDS for a in arrays.values()):
+        return None
+    n = _n_rows(columns)
+    run = pa.array([run_id] * n, pa.large_string())
+    return pa.table({"run_id": run, **{k: pa.array(a) for k, a in arrays.items()}})
+
+
+def _pandas_part(frames: list):
+    """Several runs' tables as one arrow table through pandas (the reference typing)."""
+    import pandas as pd
+    import pyarrow as pa
+
+    parts = []
+    for run_id, frame in frames:
+        f = pd.DataFrame(frame) if isinstance(frame, dict) else frame.reset_index(drop=True)
+        f.insert(0, "run_id", run_id)
+        parts.append(f)
+    return pa.Table.from_pandas(pd.concat(parts, ignore_index=True), preserve_index=False)
+
+
 def _read_table(path: Path, columns: Sequence[str] | None = None):
     import pyarrow.parquet as pq
 
@@ -494,7 +538,7 @@ class Store:
             self._failures.pop(result.run_id, None)
             for name in TABLES:
                 frame = getattr(result, name)
-                if frame is not None and len(frame):
+                if frame is not None and _n_rows(frame):
                     self._buffer[name].append((result.run_id, frame))
         else:
             self._failures[result.run_id] = {
@@ -527,17 +571,15 @@ class Store:
         self.last_flush_seconds = time.perf_counter() - t0
 
     def _write_part(self, name: str, frames: list) -> None:
-        import pandas as pd
         import pyarrow as pa
 
         folder = self.path / name
         folder.mkdir(exist_ok=True)
-        parts = []
-        for run_id, frame in frames:
-            f = frame.reset_index(drop=True)
-            f.insert(0, "run_id", run_id)
-            parts.append(f)
-        table = pa.Table.from_pandas(pd.concat(parts, ignore_index=True), preserve_index=False)
+        arrow = [_arrow_columns(run_id, frame) for run_id, frame in frames]
+        if any(t is None for t in arrow):  # a DataFrame, or columns arrow would type otherwise
+            table = _pandas_part(frames)
+        else:
+            table = pa.concat_tables(arrow)
         number = self._next_part[name]
         self._next_part[name] = number + 1
         atomic_write_bytes(folder / f"part-{number:05d}.parquet", _parquet_bytes(table))
