@@ -12,7 +12,8 @@ must start whatever happens; a real problem shows in the runs themselves).
 The server then also ends without tearing its modules down (``os._exit`` at exit): with numba
 loaded that took 0.25 s after the sweep had finished, and the server holds the sweep's stdout
 and stderr, so a caller reading them waited that long for the end. It has nothing to flush, and
-workers never run it (a forked worker leaves through ``os._exit`` of its own).
+workers never run it (a forked worker leaves through ``os._exit`` of its own). Before forking,
+the server freezes what it holds (``gc.freeze``).
 """
 
 from __future__ import annotations
@@ -56,4 +57,10 @@ def _in_forkserver() -> bool:
 
 if _in_forkserver():
     warm()
+    import gc
+
+    # Common practice for a server that forks workers: what it holds moves out of the
+    # collector's reach, so a worker's collections do not walk (and copy-on-write copy) the
+    # inherited objects. Runs are unchanged (the collector frees, it never computes).
+    gc.freeze()
     atexit.register(os._exit, 0)  # runs first at exit (last registered): no module teardown
