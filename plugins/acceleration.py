@@ -102,11 +102,17 @@ def ou_apply(mu, offset, decay, gain, sd, rng, out) -> bool:
     columns = [_strided(c) for c in (offset, decay, gain, sd)]
     if out.shape != (n,) or any(step and c.shape != (n,) for c, step in columns):
         raise ValueError("ou_apply: every column must have as many rows as mu")  # no bounds checks
-    xi = rng.standard_normal(n)  # shape: (n,) the same draws, in row order
-    module.ou_noise(
-        np.ascontiguousarray(mu, dtype=float), *(x for c in columns for x in c), xi, out
+    module.ou_noise(  # the same draws, in row order, from rng's own bit generator
+        np.ascontiguousarray(mu, dtype=float), *(x for c in columns for x in c), _bits(rng), out
     )
     return True
+
+
+def _bits(rng) -> np.ndarray:
+    """The addresses a kernel draws from ``rng`` through (handing over a Generator costs ~10 us)."""
+    from propensim.plugins.numba_bits import bits_of
+
+    return bits_of(rng)
 
 
 def _strided(values) -> tuple[np.ndarray, int]:
@@ -144,10 +150,10 @@ def meet_one_width(rng, deg, start, seller, mu, first_row, scale):
         return None
     if start.shape != (k,) or first_row < 0 or first_row + k > mu.shape[0]:
         raise ValueError("meet_one_width: buyer rows outside the population")  # no bounds checks
-    frac, arg = rng.random(k), np.empty(k)  # frac: the uniforms, then their fractional parts
+    frac, arg = np.empty(k), np.empty(k)  # frac: the uniforms' fractional parts
     partner, edge = np.empty(k, dtype=np.int64), np.empty(k, dtype=np.int64)
     module.meet_one_width(
-        frac, deg, start, seller, mu, int(first_row), float(scale), frac, partner, edge, arg
+        _bits(rng), deg, start, seller, mu, int(first_row), float(scale), frac, partner, edge, arg
     )
     return frac, partner, edge, arg
 
@@ -162,7 +168,7 @@ def prices_one_width(rng, mu, buyer, seller, sd: float, rows: int):
         return None
     if buyer.shape != seller.shape or (buyer.size and max(buyer.max(), seller.max()) >= mu.size):
         raise ValueError("prices_one_width: rows outside mu")
-    return module.prices_one_width(rng, mu, buyer, seller, float(sd))
+    return module.prices_one_width(_bits(rng), mu, buyer, seller, float(sd))
 
 
 def is_uniform(values: np.ndarray) -> bool:
@@ -273,7 +279,7 @@ def accept_one_width(rng, meet, activity, lonely, threshold, first_row, remainin
     heights = bool(activity.min() < 1.0)
     use_threshold = threshold is not None
     return module.accept_one_width(
-        rng,
+        _bits(rng),
         frac,
         partner,
         edge,
@@ -323,13 +329,14 @@ def meet_and_accept_rows(
         or (k and (rows.min() < 0 or rows.max() >= n))
     ):
         raise ValueError("meet_and_accept_rows: rows outside the population")  # no bounds checks
-    frac, arg = rng.random(k), np.empty(k)
+    bits = _bits(rng)
+    frac, arg = np.empty(k), np.empty(k)
     partner, edge = np.empty(k, dtype=np.int64), np.empty(k, dtype=np.int64)
-    module.meet_rows(frac, deg, start, seller, mu, rows, float(scale), frac, partner, edge, arg)
+    module.meet_rows(bits, deg, start, seller, mu, rows, float(scale), frac, partner, edge, arg)
     np.exp(arg, out=arg)
     use_threshold = threshold is not None
     out = module.accept_rows(
-        rng,
+        bits,
         frac,
         partner,
         edge,

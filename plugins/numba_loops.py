@@ -11,20 +11,21 @@ from __future__ import annotations
 import numba
 import numpy as np
 
+from propensim.plugins.numba_bits import permutation, standard_normal, uniform
+
 
 @numba.njit(cache=True, nogil=True)
-def ou_noise(mu, offset, off_step, decay, dec_step, gain, gain_step, sd, sd_step, xi, out):
+def ou_noise(mu, offset, off_step, decay, dec_step, gain, gain_step, sd, sd_step, bits, out):
     """``out[i] = (mu[i] decay + offset gain) + xi[i] sd``, ``xi`` standard normals.
 
-    Matches ``out = mu * decay; out += offset * gain; xi *= sd; out += xi``. Each of
-    ``offset``, ``decay``, ``gain``, ``sd`` is a column read at ``i * step`` (step 0: one value
-    for every row). The draws come in as a column (numpy's ``Generator.standard_normal``, the
-    same numbers numba's ziggurat gives): handing a Generator to a compiled function costs
-    about 10 microseconds a call, a whole small market's drift.
+    Matches ``out = mu * decay; out += offset * gain; xi = rng.standard_normal(n); xi *= sd;
+    out += xi``, drawing ``xi`` in row order from the Generator behind ``bits``
+    (:mod:`~propensim.plugins.numba_bits`). Each of ``offset``, ``decay``, ``gain``, ``sd`` is a
+    column read at ``i * step`` (step 0: one value for every row).
     """
     for i in range(mu.shape[0]):
         drift = mu[i] * decay[i * dec_step] + offset[i * off_step] * gain[i * gain_step]
-        out[i] = drift + xi[i] * sd[i * sd_step]
+        out[i] = drift + standard_normal(bits) * sd[i * sd_step]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -46,16 +47,16 @@ def settle(b, s, q, pb, ps, stock, cash):
 
 
 @numba.njit(cache=True, nogil=True)
-def meet_one_width(u, deg, start, seller, mu, first_row, scale, frac, partner, edge, arg):
+def meet_one_width(bits, deg, start, seller, mu, first_row, scale, frac, partner, edge, arg):
     """The meetings of buyers ``first_row + i`` (one each), up to the joint peak's exponent.
 
-    Matches, for normal curves of one width and ``u = rng.random(k)``: ``u *= deg;
+    Matches, for normal curves of one width and ``u = rng.random(k)`` (drawn here from the
+    Generator behind ``bits``): ``u *= deg;
     pick = u.astype(int64); u -= pick; edge = start + pick; s = seller[edge];
     arg = mu[first_row:first_row + k] - mu[s]; arg = arg * arg; arg *= scale``
     (``frac`` receives ``u``, ``partner`` receives ``s``). The caller takes ``exp(arg)``.
 
-    The uniforms come in as a column (a Generator costs about 10 microseconds a call to hand
-    over). Two passes, not one: the draws form one chain through the generator's state, and a loop
+    Two passes, not one: the draws form one chain through the generator's state, and a loop
     that also reads ``seller[e]`` and ``mu[s]`` (random places in columns larger than the
     cache) leaves the processor few independent loads to overlap. With the reads in a loop
     of their own, every iteration's loads are independent. Measured with cold caches in a
@@ -64,7 +65,7 @@ def meet_one_width(u, deg, start, seller, mu, first_row, scale, frac, partner, e
     """
     k = deg.shape[0]
     for i in range(k):
-        x = u[i] * deg[i]
+        x = uniform(bits) * deg[i]
         pick = np.int64(x)
         frac[i] = x - pick
         edge[i] = start[i] + pick
@@ -76,7 +77,7 @@ def meet_one_width(u, deg, start, seller, mu, first_row, scale, frac, partner, e
 
 
 @numba.njit(cache=True, nogil=True)
-def prices_one_width(rng, mu, buyer, seller, sd):
+def prices_one_width(bits, mu, buyer, seller, sd):
     """``(mu[buyer] + mu[seller]) * 0.5 + rng.standard_normal(m) * sd``, in that order.
 
     The draws first, then the random reads of ``mu`` (see :func:`meet_one_width`).
@@ -84,7 +85,7 @@ def prices_one_width(rng, mu, buyer, seller, sd):
     m = buyer.shape[0]
     out = np.empty(m)
     for i in range(m):
-        out[i] = rng.standard_normal()
+        out[i] = standard_normal(bits)
     for i in range(m):
         mean = (mu[buyer[i]] + mu[seller[i]]) * 0.5
         out[i] = mean + out[i] * sd
@@ -315,7 +316,7 @@ def outcome_offset(role, stock, cash, capacity, traded, step, out):
 
 @numba.njit(cache=True, nogil=True)
 def accept_one_width(
-    rng,
+    bits,
     frac,
     partner,
     edge,
@@ -365,7 +366,7 @@ def accept_one_width(
         i = hit[j]
         if np.isfinite(cash[first_row + i]) or remaining[partner[i]] > 1:
             return 2, empty_i, empty_i, np.empty(0), empty_i
-    turn = rng.permutation(nh)
+    turn = permutation(bits, nh)
     never = np.iinfo(np.int64).max
     first = np.full(remaining.shape[0], never)
     can = np.empty(nh, dtype=np.bool_)
@@ -385,7 +386,7 @@ def accept_one_width(
     where = np.empty(m, dtype=np.int64)
     price = np.empty(m)
     for j in range(m):
-        price[j] = rng.standard_normal()
+        price[j] = standard_normal(bits)
     for j in range(m):
         i = hit[j]
         b = first_row + i
@@ -668,15 +669,15 @@ def pair_on_edges(rng, buyer, seller, units_b, units_s):
 
 
 @numba.njit(cache=True, nogil=True)
-def meet_rows(u, deg, start, seller, mu, rows, scale, frac, partner, edge, arg):
+def meet_rows(bits, deg, start, seller, mu, rows, scale, frac, partner, edge, arg):
     """:func:`meet_one_width` for buyers listed by row (``rows[i]``, repeated per meeting).
 
-    Matches ``u *= deg; pick = u.astype(int64); u -= pick; edge = start + pick;
-    s = seller[edge]; arg = (mu[rows] - mu[s])^2 * scale``.
+    Matches ``u = rng.random(k)`` (drawn here), ``u *= deg; pick = u.astype(int64);
+    u -= pick; edge = start + pick; s = seller[edge]; arg = (mu[rows] - mu[s])^2 * scale``.
     """
     k = deg.shape[0]
     for i in range(k):
-        x = u[i] * deg[i]
+        x = uniform(bits) * deg[i]
         pick = np.int64(x)
         frac[i] = x - pick
         edge[i] = start[i] + pick
@@ -689,7 +690,7 @@ def meet_rows(u, deg, start, seller, mu, rows, scale, frac, partner, edge, arg):
 
 @numba.njit(cache=True, nogil=True)
 def accept_rows(
-    rng,
+    bits,
     frac,
     partner,
     edge,
@@ -738,7 +739,7 @@ def accept_rows(
             run_start[runs] = j
             runs += 1
     run_start[runs] = nh
-    turn = rng.permutation(runs)  # turn[r]: the turn of run r
+    turn = permutation(bits, runs)  # turn[r]: the turn of run r
     by_turn = np.empty(runs, dtype=np.int64)
     for r in range(runs):
         by_turn[turn[r]] = r
@@ -760,7 +761,7 @@ def accept_rows(
     where = np.empty(m, dtype=np.int64)
     price = np.empty(m)
     for j in range(m):
-        price[j] = rng.standard_normal()
+        price[j] = standard_normal(bits)
     c = 0
     for j in range(nh):
         if accepted[j]:
