@@ -21,6 +21,19 @@ from propensim.plugins.sequential_accept import greedy_accept
 from propensim.plugins.types import MarketState, Trades, TradingNetwork
 
 
+def _compiled():
+    """The compiled auction kernels (``numba_auctions``), or None when numpy is to do the work.
+
+    Follows the market's build-time choice (:func:`acceleration.compiled`); the module is
+    imported on first use, numba being loaded already when the answer is yes.
+    """
+    if acceleration.compiled() is None:
+        return None
+    from propensim.plugins import numba_auctions
+
+    return numba_auctions
+
+
 # -- quotes ---------------------------------------------------------------------------------
 def reservation_prices(pop: Population, threshold: float) -> np.ndarray:
     """Reservation price of every trader at acceptance ``threshold``, shape (n,).
@@ -105,6 +118,9 @@ def call_auction(
     rows = np.flatnonzero(live)
     if rows.size == 0:
         return Trades.empty(), 0
+    kernels = _compiled()
+    if kernels is not None:
+        return _call_auction_compiled(kernels, state, quote, k, rng, rows)
     unit_row, unit_no = _unit_copies(rem[rows])
     unit_row = rows[unit_row]  # shape: (n_units,) trader of each unit offered
     unit_quote = quote[unit_row]
@@ -163,6 +179,41 @@ def call_auction(
     return trades, int(won_b.sum() - trades.volume)
 
 
+def _call_auction_compiled(kernels, state, quote, k, rng, rows) -> tuple[Trades, int]:
+    """:func:`call_auction` with its books and pairing compiled (``numba_auctions``).
+
+    The same random draws in the same order (the demand units' ties, the supply units', the
+    permutation of the eligible edges), so the same trades as the numpy code.
+    """
+    pop, net = state.population, state.network
+    n = len(pop)
+    rem = np.ascontiguousarray(state.remaining, dtype=np.int64)
+    units = rem[rows]  # shape: (n_live,)
+    tie = rng.random(int(units.sum()))  # demand units' ties, then supply units' (as two calls)
+    comp = net.component
+    won_b, won_s, comp_price, wb_units, ws_units = kernels.call_auction_clear(
+        rows,
+        rem,
+        np.ascontiguousarray(quote, dtype=float),
+        np.ascontiguousarray(pop.cash, dtype=float),
+        pop.role,
+        comp,
+        int(comp.max()) + 1,
+        tie,
+        float(k),
+    )
+    if wb_units.size == 0:
+        return Trades.empty(), 0
+    if net.complete:
+        return _aggregate(wb_units, ws_units, comp_price[comp[wb_units]], n), 0
+    eligible = kernels.eligible_edges(net.buyer, net.seller, won_b, won_s)
+    order = rng.permutation(eligible.size)  # random edge order
+    b, s, p, qty, e = kernels.greedy_pairs(
+        eligible, order, net.buyer, net.seller, won_b, won_s, comp, comp_price
+    )
+    return Trades(b, s, p, qty, e), int(wb_units.size - qty.sum())
+
+
 def pair_on_edges(
     net: TradingNetwork, units_b: np.ndarray, units_s: np.ndarray, rng: np.random.Generator
 ) -> Trades:
@@ -172,15 +223,6 @@ def pair_on_edges(
     ``min(units_b, units_s)`` unit trades, taken edge by edge in random order
     (:func:`greedy_accept`). Prices are left NaN for the caller to fill.
     """
-    fused = acceleration.kernel("pair_on_edges")
-    n = units_b.shape[0]
-    if fused is not None and units_s.shape == (n,) and net.n == n and net.buyer.size:
-        ub = np.ascontiguousarray(units_b, dtype=np.int64)
-        us = np.ascontiguousarray(units_s, dtype=np.int64)
-        b, s, q, e = fused(rng, net.buyer, net.seller, ub, us)  # the same pairs, in one pass
-        if b.size == 0:
-            return Trades.empty()
-        return Trades(b, s, np.full(b.size, np.nan), q, e)
     eligible = np.flatnonzero((units_b[net.buyer] > 0) & (units_s[net.seller] > 0))
     if eligible.size == 0:
         return Trades.empty()
