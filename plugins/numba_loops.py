@@ -628,47 +628,6 @@ def tally(b, s, q, price, n):
 
 
 @numba.njit(cache=True, nogil=True)
-def pair_on_edges(rng, buyer, seller, units_b, units_s):
-    """The call auction's pairing of winning units along edges, in one compiled pass.
-
-    Fuses the eligible edges (both ends with units to place), their random order (one
-    ``rng.permutation``), the unit copies of each edge and the greedy acceptance of
-    ``greedy_accept`` in that order: an edge's copies come one after another, so the edge takes
-    ``min(units left at its buyer, units left at its seller)``. Returns the used edges' buyers,
-    sellers, quantities and positions, in the random order (as the numpy path lists them).
-    """
-    m = buyer.shape[0]
-    eligible = np.empty(m, dtype=np.int64)
-    k = 0
-    for e in range(m):
-        if units_b[buyer[e]] > 0 and units_s[seller[e]] > 0:
-            eligible[k] = e
-            k += 1
-    order = rng.permutation(k)
-    left_b = units_b.copy()
-    left_s = units_s.copy()
-    out_b = np.empty(k, dtype=np.int64)
-    out_s = np.empty(k, dtype=np.int64)
-    out_q = np.empty(k, dtype=np.int64)
-    out_e = np.empty(k, dtype=np.int64)
-    used = 0
-    for j in range(k):
-        e = eligible[order[j]]
-        b = buyer[e]
-        s = seller[e]
-        t = min(left_b[b], left_s[s])
-        if t > 0:
-            left_b[b] -= t
-            left_s[s] -= t
-            out_b[used] = b
-            out_s[used] = s
-            out_q[used] = t
-            out_e[used] = e
-            used += 1
-    return out_b[:used], out_s[:used], out_q[:used], out_e[:used]
-
-
-@numba.njit(cache=True, nogil=True)
 def meet_rows(bits, deg, start, seller, mu, rows, scale, frac, partner, edge, arg):
     """:func:`meet_one_width` for buyers listed by row (``rows[i]``, repeated per meeting).
 
