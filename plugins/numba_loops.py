@@ -47,6 +47,20 @@ def settle(b, s, q, pb, ps, stock, cash):
 
 
 @numba.njit(cache=True, nogil=True)
+def _pick_edges(bits, deg, start, frac, edge):
+    """One uniform per meeting split into the partner it picks and the chance that decides it.
+
+    ``u = rng.random(k); u *= deg; pick = u.astype(int64); u -= pick; edge = start + pick``
+    (``frac`` receives ``u``): the first pass of :func:`meet_one_width` and :func:`meet_rows`.
+    """
+    for i in range(deg.shape[0]):
+        x = uniform(bits) * deg[i]
+        pick = np.int64(x)
+        frac[i] = x - pick
+        edge[i] = start[i] + pick
+
+
+@numba.njit(cache=True, nogil=True)
 def meet_one_width(bits, deg, start, seller, mu, first_row, scale, frac, partner, edge, arg):
     """The meetings of buyers ``first_row + i`` (one each), up to the joint peak's exponent.
 
@@ -64,11 +78,7 @@ def meet_one_width(bits, deg, start, seller, mu, first_row, scale, frac, partner
     14-16 ms against 7 ms.
     """
     k = deg.shape[0]
-    for i in range(k):
-        x = uniform(bits) * deg[i]
-        pick = np.int64(x)
-        frac[i] = x - pick
-        edge[i] = start[i] + pick
+    _pick_edges(bits, deg, start, frac, edge)
     for i in range(k):
         s = seller[edge[i]]
         partner[i] = s
@@ -635,11 +645,7 @@ def meet_rows(bits, deg, start, seller, mu, rows, scale, frac, partner, edge, ar
     u -= pick; edge = start + pick; s = seller[edge]; arg = (mu[rows] - mu[s])^2 * scale``.
     """
     k = deg.shape[0]
-    for i in range(k):
-        x = uniform(bits) * deg[i]
-        pick = np.int64(x)
-        frac[i] = x - pick
-        edge[i] = start[i] + pick
+    _pick_edges(bits, deg, start, frac, edge)
     for i in range(k):
         s = seller[edge[i]]
         partner[i] = s
