@@ -15,7 +15,7 @@ import numpy as np
 
 
 # -- call auction ---------------------------------------------------------------------------
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _before(key, tie, a, b):
     """Whether unit ``a`` sorts before unit ``b``: by key, then tie, then position."""
     if key[a] != key[b]:
