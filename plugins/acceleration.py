@@ -256,6 +256,54 @@ def outcome_offset(pop, traded, step: float):
     return out
 
 
+def force_step(plan, pop, traded, coefficients, rng):
+    """The new ``mu`` of a drift sum of anchor and outcome forces, in one compiled pass.
+
+    ``plan`` is ``(kinds, params, sum_from_zero)`` (see ``numba_loops.force_step``); ``traded``
+    the units each trader traded (None when no outcome force reads it); ``coefficients`` the
+    exact step's scalar ``(decay, gain, sd)`` (``sd`` None without noise). Returns None, doing
+    nothing, when not compiled here or the columns do not fit the kernel.
+    """
+    module = compiled()
+    if module is None:
+        return None
+    n = pop.mu.shape[0]
+    traded = _NO_TRADES if traded is None else np.asarray(traded)  # None: no outcome force
+    if traded is not _NO_TRADES and (traded.shape != (n,) or traded.dtype.kind not in "iu"):
+        return None
+    if pop.stock.dtype != np.int64 or pop.capacity.dtype != np.int64:
+        return None
+    kinds, params, sum_from_zero = plan
+    decay, gain, sd = coefficients
+    noisy = sd is not None
+    if noisy and rng is None:
+        return None  # the numpy path names the missing generator
+    out = np.empty(n)
+    module.force_step(
+        kinds,
+        params,
+        sum_from_zero,
+        pop.value,
+        pop.role,
+        pop.stock,
+        pop.cash,
+        pop.capacity,
+        traded,
+        pop.mu,
+        np.array([decay, gain, sd if noisy else 0.0]),
+        noisy,
+        _bits(rng) if noisy else _NO_BITS,
+        out,
+    )
+    return out
+
+
+#: What a kernel that draws nothing is handed for its bit generator.
+_NO_BITS = np.zeros(4, dtype=np.int64)
+#: What :func:`force_step` is handed for ``traded`` when no rule reads it.
+_NO_TRADES = np.zeros(0, dtype=np.int64)
+
+
 def accept_one_width(rng, meet, activity, lonely, threshold, first_row, remaining, cash, mu, sd):
     """Compiled second half of a one-meeting propensity round (``numba_loops.accept_one_width``).
 

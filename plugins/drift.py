@@ -545,6 +545,7 @@ class WidthAdaptation(_ForceRule):
 
 #: Key of the per-market cache entry holding the last exact-step coefficients.
 _OU_CACHE_KEY = "drift.ou_coefficients"
+_FUSED_CACHE_KEY = "drift.ou_coefficients.fused"
 
 
 def _column(values, n: int) -> np.ndarray:
@@ -608,6 +609,7 @@ class DriftSum:
         if same:
             return  # checked already, with these very parameters
         self._check()
+        self._plan = _force_plan(self.rules)
         self._checked = key
 
     def _check(self) -> None:
@@ -667,6 +669,9 @@ class DriftSum:
     ) -> tuple[np.ndarray, np.ndarray]:
         """Return new ``(mu, sigma)``; the population is not modified."""
         self.check()
+        fused = self._fused_apply(state, outcome, rng)
+        if fused is not None:
+            return fused
         pop = state.population
         stiffness, offset = self._summed_terms(state, outcome)
         # The step covers the time since the last one: one round (``dt``) in round mode, the
@@ -698,11 +703,76 @@ class DriftSum:
                 mu, sigma = _apply_after(rule, state, outcome, rng, mu, sigma)
         return mu, sigma
 
+    def _fused_apply(self, state: MarketState, outcome: RoundOutcome, rng):
+        """:meth:`apply` in one compiled pass (``numba_loops.force_step``), or None.
+
+        For the common sums: anchor and outcome forces only, every trader with one width and one
+        energy scale (so one stiffness). The same numbers as the general path below: the
+        stiffness is summed in rule order as :meth:`_summed_terms` sums it, the coefficients come
+        from :func:`_ou_coefficients` and the kernel adds the offsets in the same order.
+        """
+        plan = self.__dict__.get("_plan")
+        module = acceleration.compiled() if plan is not None else None
+        pop = state.population
+        if module is None or len(pop) == 0:
+            return None
+        kinds, numbers, codes = plan
+        if _ANCHOR in kinds and not module.one_scale_and_width(pop.gamma, pop.sigma):
+            return None
+        spring = None
+        if _ANCHOR in kinds:  # AnchorDrift.terms for one width and one scale: a scalar
+            sigma0 = float(pop.sigma[0])
+            spring = float(pop.gamma[0]) / (sigma0 * sigma0)
+        params = np.empty(len(kinds))
+        stiffness = 0.0
+        for r, (kind, number) in enumerate(zip(kinds, numbers, strict=True)):
+            k = spring * number if kind == _ANCHOR else 0.0  # outcome: stiffness 0
+            params[r] = k if kind == _ANCHOR else number
+            stiffness = k if len(kinds) == 1 else stiffness + k
+        elapsed = float(getattr(state, "elapsed", 1.0))
+        step = (float(self.eta), float(self.noise), float(self.dt) * elapsed)
+        cached = state.cache.get(_FUSED_CACHE_KEY)
+        if cached is not None and cached[0] == step and cached[1] == stiffness:
+            coefficients = cached[2]
+        else:
+            coefficients = _ou_coefficients(np.array([stiffness]), *step)
+            state.cache[_FUSED_CACHE_KEY] = (step, stiffness, coefficients)
+        traded = outcome.traded if _OUTCOME in kinds else None  # anchors do not read it
+        mu = acceleration.force_step(
+            (codes, params, len(kinds) > 1), pop, traded, coefficients, rng
+        )
+        return None if mu is None else (mu, pop.sigma.copy())
+
     def __repr__(self) -> str:
         return (
             f"DriftSum(rules={list(self.rules)!r}, eta={self.eta!r}, noise={self.noise!r}, "
             f"dt={self.dt!r})"
         )
+
+
+#: Force kinds of ``numba_loops.force_step`` (kept equal to its ANCHOR and OUTCOME).
+_ANCHOR, _OUTCOME = 0, 1
+
+
+def _force_plan(rules) -> tuple | None:
+    """``(kinds, numbers, kinds as int64)`` when every rule is a plain anchor or outcome force.
+
+    ``numbers`` are the anchors' strengths and the outcome rules' steps. Subclasses do not
+    qualify (they may change ``terms``); neither do sums, widths that adapt or other rules.
+    """
+    kinds, numbers = [], []
+    for rule in rules:
+        if type(rule) is AnchorDrift:
+            kinds.append(_ANCHOR)
+            numbers.append(float(rule.strength))
+        elif type(rule) is OutcomeDrift:
+            kinds.append(_OUTCOME)
+            numbers.append(float(rule.step))
+        else:
+            return None
+    if not kinds:
+        return None
+    return tuple(kinds), tuple(numbers), np.array(kinds, dtype=np.int64)
 
 
 def _parameters(drift: DriftSum):

@@ -239,6 +239,23 @@ CASES = {
         }
     },
     "sparse network": {"network": {"name": "erdos_renyi", "mean_degree": 0.8}},
+    # Sums the fused drift pass (numba_loops.force_step) stands in for, and one it must not take
+    # (spread widths: one stiffness per trader).
+    "anchor and outcome": {"drift": {"rules": [{"name": "anchor"}, {"name": "outcome"}]}},
+    "outcome then anchor": {
+        "drift": {"rules": [{"name": "outcome", "step": 0.2}, {"name": "anchor", "strength": 2.5}]}
+    },
+    "outcome alone": {"drift": {"name": "outcome", "step": 0.3, "noise": 0.2}},
+    "noiseless anchor": {"drift": {"name": "anchor", "noise": 0.0, "strength": 0.4}},
+    "two forces, spread widths": {
+        "population__sigma": [3.0, 8.0],
+        "drift": {"rules": [{"name": "anchor"}, {"name": "outcome"}], "noise": 0.5},
+    },
+    "two forces, budgets": {
+        "population__cash": 300.0,
+        "market": {"keep_ledger": True, "replenish": False},
+        "drift": {"rules": [{"name": "anchor"}, {"name": "outcome"}], "noise": 0.5, "eta": 2.0},
+    },
 }
 
 
@@ -308,3 +325,60 @@ def test_a_bad_kernels_setting_is_named(monkeypatch):
     monkeypatch.setenv("PROPENSIM_KERNELS", "fast")
     with pytest.raises(ValueError, match="PROPENSIM_KERNELS must be numpy, numba or auto"):
         acceleration.compiled(10)
+
+
+@pytest.mark.filterwarnings("ignore:.*trading network hold only:RuntimeWarning")
+def test_the_fused_drift_pass_serves_anchor_and_outcome_sums(monkeypatch):
+    # The market cases above agree with numpy; this checks that they went through the fused pass
+    # (else they would only repeat the general path) and that it declines what it cannot do.
+    from propensim.plugins import drift as drift_rules
+    from propensim.plugins import numba_loops
+
+    assert (drift_rules._ANCHOR, drift_rules._OUTCOME) == (numba_loops.ANCHOR, numba_loops.OUTCOME)
+    calls = []
+    original = acceleration.force_step
+
+    def counted(*args, **kwargs):
+        out = original(*args, **kwargs)
+        calls.append(out is not None)
+        return out
+
+    monkeypatch.setattr(acceleration, "force_step", counted)
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    build_market(_market_config(**CASES["anchor and outcome"]), seed=3, mesa=False).run(3)
+    assert calls == [True, True, True]
+    calls.clear()
+    build_market(_market_config(**CASES["two forces, spread widths"]), seed=3, mesa=False).run(2)
+    build_market(_market_config(**CASES["summed forces"]), seed=3, mesa=False).run(2)
+    assert calls == []  # one stiffness per trader, or a width rule: the general path
+
+
+@pytest.mark.filterwarnings("ignore:.*trading network hold only:RuntimeWarning")
+@pytest.mark.parametrize("elapsed", [0.25, 3.0])
+def test_the_fused_drift_pass_steps_over_elapsed_time_as_numpy_does(monkeypatch, elapsed):
+    # Event mode steps the drift over the time since the last step (MarketState.elapsed).
+    from propensim.markets import stages
+
+    seen = []
+    step_drift = stages.drift
+
+    def keep(market, outcome):
+        seen.append(outcome)
+        return step_drift(market, outcome)
+
+    monkeypatch.setattr(stages, "drift", keep)
+    results = []
+    for how in ("numpy", "numba"):
+        monkeypatch.setenv("PROPENSIM_KERNELS", how)
+        market = build_market(_market_config(**CASES["anchor and outcome"]), seed=8, mesa=False)
+        market.run(2)
+        assert seen[-1].traded.any()  # an outcome with trades and misses
+        market.state.elapsed = elapsed
+        acceleration.activate(how == "numba")
+        try:
+            rng = np.random.default_rng(4)
+            results.append(market.drift.apply(market.state, seen[-1], rng))
+        finally:
+            acceleration.activate(None)
+    (mu0, sigma0), (mu1, sigma1) = results
+    assert np.array_equal(mu0, mu1) and np.array_equal(sigma0, sigma1)
