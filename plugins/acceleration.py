@@ -110,8 +110,11 @@ def ou_apply(mu, offset, decay, gain, sd, rng, out) -> bool:
 
 def _bits(rng) -> np.ndarray:
     """The addresses a kernel draws from ``rng`` through (handing over a Generator costs ~10 us)."""
-    from propensim.plugins.numba_bits import bits_of
+    bits_of = _state.get("bits_of")
+    if bits_of is None:  # imported once (an import statement here costs ~1 us a call)
+        from propensim.plugins.numba_bits import bits_of
 
+        _state["bits_of"] = bits_of
     return bits_of(rng)
 
 
@@ -256,46 +259,51 @@ def outcome_offset(pop, traded, step: float):
     return out
 
 
-def force_step(plan, pop, traded, coefficients, rng):
+def force_step(plan, pop, traded, rng):
     """The new ``mu`` of a drift sum of anchor and outcome forces, in one compiled pass.
 
-    ``plan`` is ``(kinds, params, sum_from_zero)`` (see ``numba_loops.force_step``); ``traded``
-    the units each trader traded (None when no outcome force reads it); ``coefficients`` the
-    exact step's scalar ``(decay, gain, sd)`` (``sd`` None without noise). Returns None, doing
-    nothing, when not compiled here or the columns do not fit the kernel.
+    ``plan`` is ``(kinds, params, sum_from_zero, one_scale, coefficients, noisy)``, the
+    arguments of ``numba_loops.force_step`` that do not change from round to round;
+    ``traded`` the units each trader traded (None when no outcome force reads it). Returns
+    None, doing nothing, when not compiled here, the columns do not fit the kernel or (with
+    ``one_scale``) the traders' scales or widths differ.
     """
     module = compiled()
     if module is None:
         return None
     n = pop.mu.shape[0]
-    traded = _NO_TRADES if traded is None else np.asarray(traded)  # None: no outcome force
-    if traded is not _NO_TRADES and (traded.shape != (n,) or traded.dtype.kind not in "iu"):
+    traded = _NO_TRADES if traded is None else traded  # None: no outcome force
+    if traded is not _NO_TRADES and (
+        not isinstance(traded, np.ndarray) or traded.shape != (n,) or traded.dtype.kind not in "iu"
+    ):
         return None
     if pop.stock.dtype != np.int64 or pop.capacity.dtype != np.int64:
         return None
-    kinds, params, sum_from_zero = plan
-    decay, gain, sd = coefficients
-    noisy = sd is not None
+    kinds, params, sum_from_zero, one_scale, coefficients, noisy = plan
     if noisy and rng is None:
         return None  # the numpy path names the missing generator
     out = np.empty(n)
-    module.force_step(
+    bits = _bits(rng) if noisy else _NO_BITS
+    done = module.force_step(
         kinds,
         params,
         sum_from_zero,
+        one_scale,
         pop.value,
         pop.role,
         pop.stock,
         pop.cash,
         pop.capacity,
         traded,
+        pop.gamma,
+        pop.sigma,
         pop.mu,
-        np.array([decay, gain, sd if noisy else 0.0]),
+        coefficients,
         noisy,
-        _bits(rng) if noisy else _NO_BITS,
+        bits,
         out,
     )
-    return out
+    return out if done else None
 
 
 #: What a kernel that draws nothing is handed for its bit generator.

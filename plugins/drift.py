@@ -545,7 +545,6 @@ class WidthAdaptation(_ForceRule):
 
 #: Key of the per-market cache entry holding the last exact-step coefficients.
 _OU_CACHE_KEY = "drift.ou_coefficients"
-_FUSED_CACHE_KEY = "drift.ou_coefficients.fused"
 
 
 def _column(values, n: int) -> np.ndarray:
@@ -610,6 +609,7 @@ class DriftSum:
             return  # checked already, with these very parameters
         self._check()
         self._plan = _force_plan(self.rules)
+        self._fused = None  # worked out again for these rules
         self._checked = key
 
     def _check(self) -> None:
@@ -709,39 +709,48 @@ class DriftSum:
         For the common sums: anchor and outcome forces only, every trader with one width and one
         energy scale (so one stiffness). The same numbers as the general path below: the
         stiffness is summed in rule order as :meth:`_summed_terms` sums it, the coefficients come
-        from :func:`_ou_coefficients` and the kernel adds the offsets in the same order.
+        from :func:`_ou_coefficients` and the kernel adds the offsets in the same order. What
+        the kernel is handed besides the columns depends only on the step, the first trader's
+        scale and width and the rules: worked out once and kept (``self._fused``) while those
+        stay the same.
         """
         plan = self.__dict__.get("_plan")
-        module = acceleration.compiled() if plan is not None else None
         pop = state.population
-        if module is None or len(pop) == 0:
+        if plan is None or len(pop) == 0:
             return None
-        kinds, numbers, codes = plan
-        if _ANCHOR in kinds and not module.one_scale_and_width(pop.gamma, pop.sigma):
-            return None
-        spring = None
-        if _ANCHOR in kinds:  # AnchorDrift.terms for one width and one scale: a scalar
-            sigma0 = float(pop.sigma[0])
-            spring = float(pop.gamma[0]) / (sigma0 * sigma0)
-        params = np.empty(len(kinds))
-        stiffness = 0.0
-        for r, (kind, number) in enumerate(zip(kinds, numbers, strict=True)):
-            k = spring * number if kind == _ANCHOR else 0.0  # outcome: stiffness 0
-            params[r] = k if kind == _ANCHOR else number
-            stiffness = k if len(kinds) == 1 else stiffness + k
+        kinds = plan[0]
         elapsed = float(getattr(state, "elapsed", 1.0))
         step = (float(self.eta), float(self.noise), float(self.dt) * elapsed)
-        cached = state.cache.get(_FUSED_CACHE_KEY)
-        if cached is not None and cached[0] == step and cached[1] == stiffness:
-            coefficients = cached[2]
-        else:
-            coefficients = _ou_coefficients(np.array([stiffness]), *step)
-            state.cache[_FUSED_CACHE_KEY] = (step, stiffness, coefficients)
+        key = (step, float(pop.gamma[0]), float(pop.sigma[0])) if _ANCHOR in kinds else step
+        kept = self.__dict__.get("_fused")
+        if kept is None or kept[0] != key:
+            kept = (key, self._fused_arguments(plan, step, pop))
+            self._fused = kept
         traded = outcome.traded if _OUTCOME in kinds else None  # anchors do not read it
-        mu = acceleration.force_step(
-            (codes, params, len(kinds) > 1), pop, traded, coefficients, rng
-        )
+        mu = acceleration.force_step(kept[1], pop, traded, rng)
         return None if mu is None else (mu, pop.sigma.copy())
+
+    @staticmethod
+    def _fused_arguments(plan, step, pop) -> tuple:
+        """``numba_loops.force_step``'s fixed arguments for ``step`` and ``pop``'s first trader."""
+        kinds, numbers, codes = plan
+        spring = None
+        if _ANCHOR in kinds:  # AnchorDrift.terms for one width and one scale: a scalar
+            spring = np.float64(pop.gamma[0]) / np.square(np.float64(pop.sigma[0]))
+        params = np.empty(len(kinds))
+        stiffness = np.float64(0.0)
+        for r, (kind, number) in enumerate(zip(kinds, numbers, strict=True)):
+            if kind == _ANCHOR:
+                k = spring * number if number != 1 else spring
+                params[r] = k
+            else:  # an outcome force: stiffness 0, offset step * direction
+                k = np.float64(0.0)
+                params[r] = number
+            stiffness = k if len(kinds) == 1 else stiffness + k
+        decay, gain, sd = _ou_coefficients(np.array([stiffness]), *step)
+        noisy = sd is not None
+        coefficients = np.array([decay, gain, sd if noisy else 0.0])
+        return (codes, params, len(kinds) > 1, _ANCHOR in kinds, coefficients, noisy)
 
     def __repr__(self) -> str:
         return (

@@ -33,22 +33,19 @@ ANCHOR, OUTCOME = 0, 1
 
 
 @numba.njit(cache=True, nogil=True)
-def one_scale_and_width(gamma, sigma):
-    """``is_uniform(gamma) and is_uniform(sigma)``: one stiffness for every trader's spring."""
-    return is_uniform(gamma) and is_uniform(sigma)
-
-
-@numba.njit(cache=True, nogil=True)
 def force_step(
     kinds,
     params,
     sum_from_zero,
+    one_scale,
     value,
     role,
     stock,
     cash,
     capacity,
     traded,
+    gamma,
+    sigma,
     mu,
     coefficients,
     noisy,
@@ -62,7 +59,13 @@ def force_step(
     order as ``DriftSum._summed_terms`` sums them (from 0.0 when ``sum_from_zero``, else from
     the first term), and :func:`ou_noise`'s exact step with scalar ``coefficients`` ``(decay,
     gain, sd)``: ``mu decay + offset gain``, plus ``xi sd`` when ``noisy``.
+
+    With ``one_scale`` (an anchor in the sum: ``k`` was worked out from ``gamma[0]`` and
+    ``sigma[0]``) it first checks that every trader has that scale and width, and returns False,
+    writing and drawing nothing, when one does not; otherwise it returns True.
     """
+    if one_scale and not (is_uniform(gamma) and is_uniform(sigma)):
+        return False
     decay, gain, sd = coefficients[0], coefficients[1], coefficients[2]
     for i in range(mu.shape[0]):
         offset = 0.0
@@ -76,6 +79,7 @@ def force_step(
             offset = term if (r == 0 and not sum_from_zero) else offset + term
         drift = mu[i] * decay + offset * gain
         out[i] = drift + standard_normal(bits) * sd if noisy else drift
+    return True
 
 
 @numba.njit(cache=True, nogil=True)

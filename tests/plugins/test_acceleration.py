@@ -349,8 +349,10 @@ def test_the_fused_drift_pass_serves_anchor_and_outcome_sums(monkeypatch):
     assert calls == [True, True, True]
     calls.clear()
     build_market(_market_config(**CASES["two forces, spread widths"]), seed=3, mesa=False).run(2)
+    assert calls == [False, False]  # one stiffness per trader: the kernel declines
+    calls.clear()
     build_market(_market_config(**CASES["summed forces"]), seed=3, mesa=False).run(2)
-    assert calls == []  # one stiffness per trader, or a width rule: the general path
+    assert calls == []  # a width rule: the general path, without asking the kernel
 
 
 @pytest.mark.filterwarnings("ignore:.*trading network hold only:RuntimeWarning")
