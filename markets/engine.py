@@ -140,7 +140,7 @@ class MarketEngine(TraderRemoval):
             population=population,
             network=network,
             round=0,
-            equilibrium_price=_equilibrium_price(population),
+            equilibrium_price=float("nan"),  # set by _set_derived, below
         )
         #: Compiled kernels or numpy, chosen once here (importing numba now, not in round 0).
         self.compiled = acceleration.choose()
@@ -405,19 +405,35 @@ def _warn_if_no_trade_possible(pop: Population, net: TradingNetwork) -> None:
             stacklevel=3,
         )
         return
+    if _edges_join_roles(pop, net):
+        # Every edge joins a buyer and a seller, so a part of two or more traders holds both
+        # roles: the traders without a partner are those without an edge, each a part alone.
+        # (The same count as the components below, without building them.)
+        stranded = lonely = int(np.count_nonzero(net.degree == 0))
+    else:
+        stranded, lonely = _one_sided_parts(pop, net)
+    if lonely:
+        # One line, whatever the count of parts: the numbers, then a fixed text.
+        warnings.warn(
+            f"{stranded} of {len(pop)} traders have no possible trading partner (in {lonely} "
+            "part(s) of the trading network that hold only buyers or only sellers)",
+            RuntimeWarning,
+            stacklevel=3,
+        )
+
+
+def _edges_join_roles(pop: Population, net: TradingNetwork) -> bool:
+    """Whether every trading edge runs from a buyer to a seller."""
+    role = pop.role
+    return bool((role[net.buyer] == BUYER).all() and (role[net.seller] == SELLER).all())
+
+
+def _one_sided_parts(pop: Population, net: TradingNetwork) -> tuple[int, int]:
+    """``(traders, parts)`` in the network's connected parts that hold only one role."""
     comp = net.component
     has_buyer = np.zeros(comp.max() + 1, dtype=bool)
     has_seller = np.zeros(comp.max() + 1, dtype=bool)
     has_buyer[comp[pop.role == BUYER]] = True
     has_seller[comp[pop.role == SELLER]] = True
     one_sided = has_buyer ^ has_seller  # shape: (n_parts,)
-    lonely = int(np.count_nonzero(one_sided))
-    if lonely:
-        stranded = int(np.count_nonzero(one_sided[comp]))  # traders in those parts
-        # One line, whatever the count of parts: the numbers, then a fixed text.
-        warnings.warn(
-            f"{stranded} of {comp.size} traders have no possible trading partner (in {lonely} "
-            "part(s) of the trading network that hold only buyers or only sellers)",
-            RuntimeWarning,
-            stacklevel=3,
-        )
+    return int(np.count_nonzero(one_sided[comp])), int(np.count_nonzero(one_sided))

@@ -128,12 +128,24 @@ def get_plugin(kind: str, name: str):
 def parameters(kind: str, name: str) -> dict[str, Any]:
     """The keyword parameters a plugin accepts, with their defaults."""
     cls = get_plugin(kind, name)
-    sig = inspect.signature(cls)
-    return {
-        p.name: (None if p.default is inspect.Parameter.empty else p.default)
-        for p in sig.parameters.values()
-        if p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
-    }
+    found = _parameters_of.get(cls)
+    if found is None or found[0] is not cls:
+        sig = inspect.signature(cls)  # about 0.2 ms: read once per class (a sweep builds often)
+        found = (
+            cls,
+            {
+                p.name: (None if p.default is inspect.Parameter.empty else p.default)
+                for p in sig.parameters.values()
+                if p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
+            },
+        )
+        _parameters_of[cls] = found
+    return dict(found[1])
+
+
+#: ``parameters`` of each plugin class seen, keyed by the class (a class registered again under
+#: the same name is a new object, so it is read afresh).
+_parameters_of: dict[Any, tuple[Any, dict[str, Any]]] = {}
 
 
 def make_plugin(kind: str, name: str, /, **params):

@@ -149,3 +149,20 @@ def test_market_accepts_a_networkx_graph_with_roles():
         MarketEngine(pop, graph, make_plugin("clearing", "propensity"), seed=0)
     with pytest.raises(ValueError, match="network has 4 traders"):
         MarketEngine(pop, nx.path_graph(4), make_plugin("clearing", "propensity"))
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_no_partner_count_without_components_matches_the_components(seed):
+    # Reference: scipy.sparse.csgraph.connected_components (through TradingNetwork.component),
+    # counting the traders in parts that hold only one role; the build counts traders without
+    # an edge instead, which is the same when every edge joins a buyer and a seller.
+    from propensim.agents.population import build_population
+    from propensim.markets.engine import _edges_join_roles, _one_sided_parts
+    from propensim.plugins.networks import build_network
+
+    pop = build_population(n_buyers=300, n_sellers=200, rng=seed)
+    net = build_network("erdos_renyi", pop.role, rng=seed, mean_degree=1.5)
+    assert _edges_join_roles(pop, net)
+    lonely = int(np.count_nonzero(net.degree == 0))
+    assert lonely > 0  # a sparse network leaves some traders alone
+    assert _one_sided_parts(pop, net) == (lonely, lonely)
