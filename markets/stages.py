@@ -191,6 +191,9 @@ def record(market, outcome: RoundOutcome, row: dict[str, float]) -> None:
         market.recorder.record_meetings(market.round, market.state.meetings)
     trades = outcome.trades
     if len(trades):
-        # Not np.dot: BLAS may wake its threads for long vectors (costly on a shared machine).
-        q = trades.quantity
-        market.state.last_price = float((trades.price * q).sum() / q.sum())
+        fused = acceleration.kernel("weighted_price")
+        if fused is not None:  # one compiled pass, numpy's rounding (the same number)
+            market.state.last_price = float(fused(trades.price, trades.quantity))
+        else:  # not np.dot: BLAS may wake its threads for long vectors (costly when shared)
+            q = trades.quantity
+            market.state.last_price = float((trades.price * q).sum() / q.sum())

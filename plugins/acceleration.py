@@ -135,11 +135,8 @@ def settle(buyer, seller, quantity, buyer_pays, seller_gets, stock, cash) -> boo
     module = compiled(n)
     if module is None or stock.dtype != np.int64 or cash.dtype != np.float64 or cash.shape != (n,):
         return False
-    b, s = buyer, seller
-    if b.size and (min(b.min(), s.min()) < 0 or max(b.max(), s.max()) >= n):
-        return False  # no bounds checks in the loop: numpy's ufunc.at raises the IndexError
-    module.settle(b, s, quantity, buyer_pays, seller_gets, stock, cash)
-    return True
+    # False for a row out of range (no bounds checks in the loop): numpy's ufunc.at raises.
+    return module.settle(buyer, seller, quantity, buyer_pays, seller_gets, stock, cash)
 
 
 def meet_one_width(rng, deg, start, seller, mu, first_row, scale):
@@ -169,7 +166,9 @@ def prices_one_width(rng, mu, buyer, seller, sd: float, rows: int):
     module = compiled(rows)
     if module is None:
         return None
-    if buyer.shape != seller.shape or (buyer.size and max(buyer.max(), seller.max()) >= mu.size):
+    if buyer.shape != seller.shape or not (
+        module.within(buyer, mu.size) and module.within(seller, mu.size)
+    ):
         raise ValueError("prices_one_width: rows outside mu")
     return module.prices_one_width(_bits(rng), mu, buyer, seller, float(sd))
 
@@ -329,7 +328,7 @@ def accept_one_width(rng, meet, activity, lonely, threshold, first_row, remainin
         or remaining.shape != (n,)
         or cash.shape != (n,)
         or activity.shape != (n,)
-        or (lonely.size and (lonely.min() < 0 or lonely.max() >= k))
+        or not module.within(lonely, k)
     ):
         raise ValueError("accept_one_width: rows outside the population")  # no bounds checks
     heights = bool(activity.min() < 1.0)
@@ -382,7 +381,7 @@ def meet_and_accept_rows(
         or remaining.shape != (n,)
         or cash.shape != (n,)
         or activity.shape != (n,)
-        or (k and (rows.min() < 0 or rows.max() >= n))
+        or not module.within(rows, n)
     ):
         raise ValueError("meet_and_accept_rows: rows outside the population")  # no bounds checks
     bits = _bits(rng)

@@ -88,8 +88,13 @@ def settle(b, s, q, pb, ps, stock, cash):
 
     ``np.add.at(stock, b, q)``, ``np.subtract.at(stock, s, q)``, then
     ``np.subtract.at(cash, b, q pb)`` and ``np.add.at(cash, s, q ps)``, in that order.
+    Returns False, changing nothing, when a row of ``b`` or ``s`` is outside ``stock`` and
+    ``cash`` (the caller then lets numpy raise its IndexError), else True.
     """
     m = b.shape[0]
+    n = min(stock.shape[0], cash.shape[0])
+    if not (within(b, n) and within(s, n)):
+        return False
     for i in range(m):
         stock[b[i]] += q[i]
     for i in range(m):
@@ -98,6 +103,16 @@ def settle(b, s, q, pb, ps, stock, cash):
         cash[b[i]] -= q[i] * pb[i]
     for i in range(m):
         cash[s[i]] += q[i] * ps[i]
+    return True
+
+
+@numba.njit(cache=True, nogil=True)
+def within(rows, n):
+    """``rows.size == 0 or (rows.min() >= 0 and rows.max() < n)``, in one pass."""
+    for i in range(rows.shape[0]):
+        if rows[i] < 0 or rows[i] >= n:
+            return False
+    return True
 
 
 @numba.njit(cache=True, nogil=True)
