@@ -54,6 +54,8 @@ def normal_joint(mu_b, sig_b, a_b, mu_s, sig_s, a_s):
 
 #: Key of the per-market cache entry holding the buyers that have trading partners.
 _CACHE_KEY = "propensity_matching.buyers"
+#: Key of the per-market cache entry holding the meetings table when every buyer is live.
+_MEETINGS_KEY = "propensity_matching.meetings"
 
 
 def _buyer_table(state: MarketState):
@@ -120,14 +122,25 @@ def propensity_round(
         return Trades.empty()
     rows, start, deg, own, lonely = _buyer_table(state)
     live = state.remaining[rows if own is None else own] > 0  # shape: (n_b,) units left
-    if own is None or meetings > 1 or not live.all():
-        keep = np.flatnonzero(live & (deg > 0))  # gather the buyers who can meet someone
-        rows, start, deg, own, lonely = rows[keep], start[keep], deg[keep], None, None
+    all_live = bool(live.all())
+    if own is None or meetings > 1 or not all_live:
+        # Every buyer live (the common case: units restored each round): the table depends only
+        # on the network and the meetings, so it is built once and kept (read-only).
+        kept = state.cache.get(_MEETINGS_KEY) if all_live else None
+        if kept is not None and kept[0] is net and kept[1] is pop and kept[2] == meetings:
+            rows, start, deg = kept[3]
+        else:
+            keep = np.flatnonzero(live & (deg > 0))  # gather the buyers who can meet someone
+            rows, start, deg = rows[keep], start[keep], deg[keep]
+            if meetings > 1:
+                rows, start, deg = (np.repeat(x, meetings) for x in (rows, start, deg))
+            if all_live:
+                for column in (rows, start, deg):
+                    column.flags.writeable = False
+                state.cache[_MEETINGS_KEY] = (net, pop, meetings, (rows, start, deg))
         if rows.size == 0:
             return Trades.empty()
-        if meetings > 1:
-            rows, start, deg = (np.repeat(x, meetings) for x in (rows, start, deg))
-        own = rows
+        own, lonely = rows, None
     normal = pop.curve == "normal"
     bounded = state.price_bounded
     if bounded and not normal:
