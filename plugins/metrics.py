@@ -193,16 +193,27 @@ def trade_surplus(state: MarketState, outcome: RoundOutcome) -> tuple[np.ndarray
 
 
 def _surplus_sums(state: MarketState, outcome: RoundOutcome) -> tuple[float, float]:
-    """Buyers' and sellers' surplus of the round: :func:`trade_surplus`, summed."""
+    """Buyers' and sellers' surplus of the round: :func:`trade_surplus`, summed.
+
+    Three default metrics read them (efficiency, buyer and seller surplus): worked out once per
+    round and kept on the outcome, with the value column they were computed from.
+    """
+    value = state.population.value
+    kept = outcome.__dict__.get("_surplus_sums")
+    if kept is not None and kept[0] is value:
+        return kept[1]
     fused = acceleration.kernel("surplus_sums")
     if fused is None:
         gain_b, gain_s = trade_surplus(state, outcome)
-        return float(gain_b.sum()), float(gain_s.sum())
-    tr = outcome.trades
-    paid = tr.price if outcome.buyer_pays is None else outcome.buyer_pays
-    got = tr.price if outcome.seller_gets is None else outcome.seller_gets
-    gain_b, gain_s = fused(state.population.value, tr.buyer, tr.seller, tr.quantity, paid, got)
-    return float(gain_b), float(gain_s)
+        sums = float(gain_b.sum()), float(gain_s.sum())
+    else:
+        tr = outcome.trades
+        paid = tr.price if outcome.buyer_pays is None else outcome.buyer_pays
+        got = tr.price if outcome.seller_gets is None else outcome.seller_gets
+        gain_b, gain_s = fused(value, tr.buyer, tr.seller, tr.quantity, paid, got)
+        sums = float(gain_b), float(gain_s)
+    outcome.__dict__["_surplus_sums"] = (value, sums)
+    return sums
 
 
 def _weighted_prices(outcome: RoundOutcome) -> tuple[np.ndarray, np.ndarray]:
