@@ -179,7 +179,7 @@ def propensity_round(
             if status == 0:
                 return Trades.empty()
             if status == 1:
-                return Trades(buyer, seller, price, np.ones(buyer.size, dtype=np.int64), where)
+                return Trades.unit_trades(buyer, seller, price, where)
             u, s, edge, peak = ready  # a budget: the numpy path goes on from the same meetings
     if ready is None and fast is not None:
         u, s, edge, peak = fast
@@ -201,7 +201,7 @@ def propensity_round(
                 return Trades.empty()
             if rest is not None and rest[0] == 1:
                 _, buyer, seller, price, where = rest
-                return Trades(buyer, seller, price, np.ones(buyer.size, dtype=np.int64), where)
+                return Trades.unit_trades(buyer, seller, price, where)
     elif ready is None:
         # Meetings in row order (buyer, then meeting number): column reads walk memory forward.
         u = rng.random(rows.size)  # shape: (k,) on [0, 1 - 2^-53]
