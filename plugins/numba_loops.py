@@ -52,9 +52,9 @@ def force_step(
     bits,
     out,
 ):
-    """A drift sum of anchor and outcome forces with one stiffness, stepped, in one pass.
+    """A drift sum of anchor and outcome forces with one stiffness, stepped, in one call.
 
-    Fuses, per trader: each rule's offset (``AnchorDrift``: ``value * k``, ``params`` holding
+    Fuses each rule's offset (``AnchorDrift``: ``value * k``, ``params`` holding
     ``k``; ``OutcomeDrift``: :func:`outcome_offset`, ``params`` holding ``step``), summed in rule
     order as ``DriftSum._summed_terms`` sums them (from 0.0 when ``sum_from_zero``, else from
     the first term), and :func:`ou_noise`'s exact step with scalar ``coefficients`` ``(decay,
@@ -66,19 +66,33 @@ def force_step(
     """
     if one_scale and not (is_uniform(gamma) and is_uniform(sigma)):
         return False
-    decay, gain, sd = coefficients[0], coefficients[1], coefficients[2]
-    for i in range(mu.shape[0]):
-        offset = 0.0
-        for r in range(kinds.shape[0]):
-            if kinds[r] == ANCHOR:
-                term = value[i] * params[r]
+    n = mu.shape[0]
+    # The offsets first, one pass per rule into ``out`` (passes without a branch on the rule
+    # kind vectorise: at 1e5 traders an anchor's pass and the step's took 43 us, one loop over
+    # traders and rules 200 us), then the step.
+    if sum_from_zero:
+        out[:] = 0.0
+    for r in range(kinds.shape[0]):
+        k = params[r]
+        fresh = r == 0 and not sum_from_zero  # the first term is the offset so far
+        if kinds[r] == ANCHOR:
+            if fresh:
+                for i in range(n):
+                    out[i] = value[i] * k
             else:
-                term = params[r] * _outcome_direction(
-                    role[i], stock[i], cash[i], capacity[i], traded[i]
-                )
-            offset = term if (r == 0 and not sum_from_zero) else offset + term
-        drift = mu[i] * decay + offset * gain
-        out[i] = drift + standard_normal(bits) * sd if noisy else drift
+                for i in range(n):
+                    out[i] = out[i] + value[i] * k
+        else:
+            for i in range(n):
+                term = k * _outcome_direction(role[i], stock[i], cash[i], capacity[i], traded[i])
+                out[i] = term if fresh else out[i] + term
+    decay, gain, sd = coefficients[0], coefficients[1], coefficients[2]
+    if noisy:
+        for i in range(n):
+            out[i] = (mu[i] * decay + out[i] * gain) + standard_normal(bits) * sd
+    else:
+        for i in range(n):
+            out[i] = mu[i] * decay + out[i] * gain
     return True
 
 
@@ -173,12 +187,17 @@ def prices_one_width(bits, mu, buyer, seller, sd):
 
 @numba.njit(cache=True, nogil=True)
 def is_uniform(values):
-    """``values.min() == values.max()`` for a non-empty column, stopping at the first change."""
+    """``values.min() == values.max()`` for a non-empty column.
+
+    Counts the entries equal to the first (NaN equals nothing, so a column holding one is not
+    uniform, as ``min == max`` says). A full pass: it vectorises, where a loop that stops at
+    the first change does not (1e5 entries: 11 us against 67-99 us).
+    """
     first = values[0]
-    for i in range(1, values.shape[0]):
-        if values[i] != first:
-            return False
-    return first == first  # a column of NaN: min == max is False
+    same = 0
+    for i in range(values.shape[0]):
+        same += values[i] == first
+    return same == values.shape[0]
 
 
 @numba.njit(cache=True, nogil=True)
