@@ -329,21 +329,42 @@ def double_auction(
         return Trades.empty()
 
     # All random draws up front: who arrives, then one number per arrival for the quote.
-    who = live[rng.integers(0, live.size, n_quotes)]  # shape: (n_quotes,)
-    is_bid = pop.role[who] == BUYER  # shape: (n_quotes,)
-    value = pop.value[who]
-    if strategy == "curve":
-        quote = _curve_draws(pop, who, rng.standard_normal(n_quotes), lo, hi)
+    pick = rng.integers(0, live.size, n_quotes)  # shape: (n_quotes,)
+    kernels = None if strategy == "curve" else _compiled()
+    if kernels is not None and live[-1] < min(pop.role.shape[0], pop.value.shape[0]):
+        # The numpy lines below (gathers, uniforms, zero-intelligence quotes) in one compiled
+        # pass: the same numbers, the uniforms drawn from rng's own bit generator (same stream).
+        who, is_bid, quote = _quote_buffers(state, n_quotes)
+        kernels.double_auction_quotes(
+            live,
+            pick,
+            pop.role,
+            pop.value,
+            BUYER,
+            strategy == "zi_c",
+            lo,
+            hi,
+            acceleration._bits(rng),
+            who,
+            is_bid,
+            quote,
+        )
     else:
-        u = rng.random(n_quotes)
-        if strategy == "zi_c":
-            # Budget-constrained: bids in [low, value], asks in [cost, high] (Gode and Sunder).
-            q_low = np.where(is_bid, np.minimum(lo, value), value)
-            q_high = np.where(is_bid, value, np.maximum(hi, value))
-        else:  # zi_u: anywhere in the range
-            q_low = np.full(n_quotes, lo)
-            q_high = np.full(n_quotes, hi)
-        quote = q_low + u * (q_high - q_low)
+        who = live[pick]
+        is_bid = pop.role[who] == BUYER  # shape: (n_quotes,)
+        value = pop.value[who]
+        if strategy == "curve":
+            quote = _curve_draws(pop, who, rng.standard_normal(n_quotes), lo, hi)
+        else:
+            u = rng.random(n_quotes)
+            if strategy == "zi_c":
+                # Budget-constrained: bids in [low, value], asks in [cost, high] (Gode and Sunder).
+                q_low = np.where(is_bid, np.minimum(lo, value), value)
+                q_high = np.where(is_bid, value, np.maximum(hi, value))
+            else:  # zi_u: anywhere in the range
+                q_low = np.full(n_quotes, lo)
+                q_high = np.full(n_quotes, hi)
+            quote = q_low + u * (q_high - q_low)
 
     bounded = state.price_bounded  # MODEL.md section 9: quotes outside the bounds are refused
     floor, ceiling = state.price_floor, state.price_ceiling
@@ -357,6 +378,24 @@ def double_auction(
             return Trades.empty()
         return Trades(out_b, out_s, out_p, np.ones(out_b.size))
     return _book_loop(state, who, is_bid, quote, rem, cash, bounded, floor, ceiling)
+
+
+#: Key of the per-market cache entry holding the double auction's arrival columns.
+_QUOTES_KEY = "double_auction.quotes"
+
+
+def _quote_buffers(state: MarketState, n_quotes: int):
+    """Arrays ``(who, is_bid, quote)`` of ``n_quotes`` rows for the compiled set-up to fill.
+
+    Kept from round to round (per market): fresh arrays of 2e5 rows cost more in first-touch
+    page faults than the compiled pass takes to fill them. Nothing outside ``double_auction``
+    holds them (the compiled book returns new arrays), so the next round may overwrite them.
+    """
+    bufs = state.cache.get(_QUOTES_KEY)
+    if bufs is None or bufs[0].shape[0] != n_quotes:
+        bufs = (np.empty(n_quotes, np.int64), np.empty(n_quotes, bool), np.empty(n_quotes))
+        state.cache[_QUOTES_KEY] = bufs
+    return bufs
 
 
 def _book_loop(state, who, is_bid, quote, rem, cash, bounded, floor, ceiling) -> Trades:
