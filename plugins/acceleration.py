@@ -218,7 +218,7 @@ def double_auction_book(who, is_bid, quote, rem, cash, partners, bounded, floor,
         or s_ptr.shape != (n + 1,)
         or who.shape != is_bid.shape
         or who.shape != quote.shape
-        or (who.size and (who.min() < 0 or who.max() >= n))
+        or not module.within(who, n)
     ):
         raise ValueError("double_auction_book: columns of different lengths")  # no bounds checks
     n_comp = int(comp.max()) + 1 if n else 1
