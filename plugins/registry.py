@@ -128,24 +128,28 @@ def get_plugin(kind: str, name: str):
 def parameters(kind: str, name: str) -> dict[str, Any]:
     """The keyword parameters a plugin accepts, with their defaults."""
     cls = get_plugin(kind, name)
-    found = _parameters_of.get(cls)
-    if found is None or found[0] is not cls:
-        sig = inspect.signature(cls)  # about 0.2 ms: read once per class (a sweep builds often)
-        found = (
-            cls,
-            {
-                p.name: (None if p.default is inspect.Parameter.empty else p.default)
-                for p in sig.parameters.values()
-                if p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
-            },
-        )
-        _parameters_of[cls] = found
-    return dict(found[1])
+    try:
+        found = _parameters_of.get(cls)
+    except TypeError:  # an unhashable factory: read its signature every time
+        return _signature_parameters(cls)
+    if found is None:
+        found = _parameters_of[cls] = _signature_parameters(cls)  # read once per class
+    return dict(found)
 
 
-#: ``parameters`` of each plugin class seen, keyed by the class (a class registered again under
-#: the same name is a new object, so it is read afresh).
-_parameters_of: dict[Any, tuple[Any, dict[str, Any]]] = {}
+def _signature_parameters(cls) -> dict[str, Any]:
+    """Keyword parameters and defaults from ``inspect.signature`` (about 0.2 ms a call)."""
+    sig = inspect.signature(cls)
+    return {
+        p.name: (None if p.default is inspect.Parameter.empty else p.default)
+        for p in sig.parameters.values()
+        if p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD)
+    }
+
+
+#: ``parameters`` of each plugin class seen (a sweep builds thousands of markets), keyed by the
+#: class: a class registered again under the same name is a new object, so it is read afresh.
+_parameters_of: dict[Any, dict[str, Any]] = {}
 
 
 def make_plugin(kind: str, name: str, /, **params):

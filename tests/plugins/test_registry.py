@@ -175,3 +175,23 @@ def test_duplicate_entry_points_keep_the_first(monkeypatch):
         table = registry._table()
     assert table["drift"]["anchor"].target == "propensim.plugins.drift:AnchorDrift"
     monkeypatch.setattr(registry, "_TABLE", None)
+
+
+def test_parameters_are_read_once_per_class_and_for_unhashable_factories(monkeypatch):
+    from propensim.plugins import registry
+
+    class Rule:
+        def __init__(self, rate: float = 0.5, *, label: str = "x") -> None: ...
+
+    class Factory:  # defines __eq__ without __hash__: unhashable
+        def __eq__(self, other):
+            return self is other
+
+        def __call__(self, size: int = 3): ...
+
+    monkeypatch.setattr(registry, "get_plugin", lambda kind, name: Rule)
+    first = registry.parameters("clearing", "rule")
+    first["rate"] = 9.0  # a caller's change must not reach the kept copy
+    assert registry.parameters("clearing", "rule") == {"rate": 0.5, "label": "x"}
+    monkeypatch.setattr(registry, "get_plugin", lambda kind, name: Factory())
+    assert registry.parameters("clearing", "factory") == {"size": 3}
