@@ -178,8 +178,6 @@ def test_duplicate_entry_points_keep_the_first(monkeypatch):
 
 
 def test_parameters_are_read_once_per_class_and_for_unhashable_factories(monkeypatch):
-    from propensim.plugins import registry
-
     class Rule:
         def __init__(self, rate: float = 0.5, *, label: str = "x") -> None: ...
 
