@@ -187,17 +187,29 @@ def greedy_pairs(eligible, order, buyer, seller, units_b, units_s, comp, price):
     the edge takes ``min(units left at its buyer, units left at its seller)``), and the price of
     each pair's component. Returns the used edges' buyers, sellers, prices, quantities and
     positions, in the random order (as the numpy path lists them).
+
+    An edge used takes at least one unit from each side, so there are at most as many pairs as
+    buyers' units (the outputs are sized for that, not for every edge: fresh pages cost more
+    than the loop), and once every buyer's unit is placed no later edge can take one: the loop
+    stops there.
     """
     k = order.shape[0]
     left_b = units_b.copy()
     left_s = units_s.copy()
-    out_b = np.empty(k, dtype=np.int64)
-    out_s = np.empty(k, dtype=np.int64)
-    out_p = np.empty(k)
-    out_q = np.empty(k, dtype=np.int64)
-    out_e = np.empty(k, dtype=np.int64)
+    open_b = 0  # buyers' units not placed yet
+    for i in range(left_b.shape[0]):
+        if left_b[i] > 0:
+            open_b += left_b[i]
+    cap = min(k, open_b)
+    out_b = np.empty(cap, dtype=np.int64)
+    out_s = np.empty(cap, dtype=np.int64)
+    out_p = np.empty(cap)
+    out_q = np.empty(cap, dtype=np.int64)
+    out_e = np.empty(cap, dtype=np.int64)
     used = 0
     for j in range(k):
+        if open_b <= 0:
+            break
         e = eligible[order[j]]
         b = buyer[e]
         s = seller[e]
@@ -205,6 +217,7 @@ def greedy_pairs(eligible, order, buyer, seller, units_b, units_s, comp, price):
         if t > 0:
             left_b[b] -= t
             left_s[s] -= t
+            open_b -= t
             out_b[used] = b
             out_s[used] = s
             out_p[used] = price[comp[b]]
