@@ -121,8 +121,7 @@ def propensity_round(
     if net.n_edges == 0:
         return Trades.empty()
     rows, start, deg, own, lonely = _buyer_table(state)
-    live = state.remaining[rows if own is None else own] > 0  # shape: (n_b,) units left
-    all_live = bool(live.all())
+    all_live = acceleration.all_live(state.remaining, rows, own)  # every buyer has units left
     if own is None or meetings > 1 or not all_live:
         # Every buyer live (the common case: units restored each round): the table depends only
         # on the network and the meetings, so it is built once and kept (read-only).
@@ -130,6 +129,7 @@ def propensity_round(
         if kept is not None and kept[0] is net and kept[1] is pop and kept[2] == meetings:
             rows, start, deg = kept[3]
         else:
+            live = state.remaining[rows if own is None else own] > 0  # shape: (n_b,) units left
             keep = np.flatnonzero(live & (deg > 0))  # gather the buyers who can meet someone
             rows, start, deg = rows[keep], start[keep], deg[keep]
             if meetings > 1:

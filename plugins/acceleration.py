@@ -183,6 +183,17 @@ def is_uniform(values: np.ndarray) -> bool:
     return bool(module.is_uniform(values))
 
 
+def all_live(remaining, rows, span) -> bool:
+    """Whether every buyer of the meetings table has units left: ``(remaining[rows] > 0).all()``.
+
+    ``span`` is the table's slice of consecutive rows, or None; with a span, one compiled pass.
+    """
+    module = compiled() if span is not None else None
+    if module is None or remaining.shape[0] < span.stop:
+        return bool((remaining[rows if span is None else span] > 0).all())
+    return bool(module.all_positive(remaining, span.start, span.stop))
+
+
 def start_round(replenish, stock0, cash0, stock, cash, capacity, is_seller):
     """The units each trader may trade this round (None when not compiled here).
 
@@ -331,7 +342,7 @@ def accept_one_width(rng, meet, activity, lonely, threshold, first_row, remainin
         or not module.within(lonely, k)
     ):
         raise ValueError("accept_one_width: rows outside the population")  # no bounds checks
-    heights = bool(activity.min() < 1.0)
+    heights = bool(module.min_below(activity, 1.0))  # activity.min() < 1.0, one pass
     use_threshold = threshold is not None
     return module.accept_one_width(
         _bits(rng),
@@ -397,7 +408,7 @@ def meet_and_accept_rows(
         edge,
         arg,
         activity,
-        bool(activity.min() < 1.0),
+        bool(module.min_below(activity, 1.0)),  # activity.min() < 1.0
         rows,
         float(threshold) if use_threshold else 0.0,
         use_threshold,

@@ -121,6 +121,27 @@ def settle(b, s, q, pb, ps, stock, cash):
 
 
 @numba.njit(cache=True, nogil=True)
+def min_below(values, limit):
+    """``values.min() < limit`` for a non-empty column (False if one entry is NaN, as min is)."""
+    below = False
+    for i in range(values.shape[0]):
+        v = values[i]
+        if v != v:
+            return False
+        below |= v < limit
+    return below
+
+
+@numba.njit(cache=True, nogil=True)
+def all_positive(values, lo, hi):
+    """``(values[lo:hi] > 0).all()``, in one pass."""
+    for i in range(lo, hi):
+        if not values[i] > 0:
+            return False
+    return True
+
+
+@numba.njit(cache=True, nogil=True)
 def within(rows, n):
     """``rows.size == 0 or (rows.min() >= 0 and rows.max() < n)``, in one pass."""
     for i in range(rows.shape[0]):
