@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import networkx as nx
 import numpy as np
 import pytest
@@ -376,3 +378,32 @@ def test_regions_brute_force_and_kd_tree_find_the_same_pairs():
     ref = np.asarray(sorted(map(tuple, cKDTree(xy).query_pairs(0.05, output_type="ndarray"))))
     np.testing.assert_array_equal(ours, ref)
     assert len(ours) > 100
+
+
+def test_erdos_renyi_middle_path_keeps_the_bernoulli_law():
+    # 1/50 <= p < 1/5: geometric gaps between kept pairs (Batagelj and Brandes 2005). Checked
+    # against the law itself: the edge count is Binomial(n_pairs, p) and every pair is kept with
+    # probability p, independently of its position (scipy.stats for the reference tests).
+    from scipy import stats
+
+    from propensim.plugins.networks import _bernoulli_pairs
+
+    n_pairs, p, seeds = 40_000, 0.05, 60
+    counts, hits = [], np.zeros(20)
+    for seed in range(seeds):
+        flat = _bernoulli_pairs(n_pairs, p, np.random.default_rng(seed), "test")
+        assert np.all(np.diff(flat) > 0) and flat[0] >= 0 and flat[-1] < n_pairs
+        counts.append(flat.size)
+        hits += np.bincount(flat * 20 // n_pairs, minlength=20)
+    # Binomial(4e4, 0.05): mean 2000, sd 43.6; the mean of 60 counts has sd 5.6
+    assert np.mean(counts) == pytest.approx(2000, abs=6 * 5.6)
+    assert np.std(counts, ddof=1) == pytest.approx(math.sqrt(n_pairs * p * (1 - p)), rel=0.3)
+    # positions: the same share of kept pairs in each twentieth of the pairs
+    assert stats.chisquare(hits).pvalue > 1e-3
+    # and a middle-path network is a well-formed Erdos-Renyi network of the degree asked for
+    role = roles(500, 500)
+    builder = ErdosRenyi(mean_degree=10.0)
+    assert 0.02 <= builder.probability(role) < 0.2
+    net = builder.build(role, np.random.default_rng(3))
+    check_well_formed(net, role)
+    assert net.degree.mean() == pytest.approx(10.0, abs=0.5)
