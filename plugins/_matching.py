@@ -98,10 +98,10 @@ def propensity_round(
     """One round of propensity matching over whole arrays (see module docstring).
 
     Random draws, in this order: one uniform ``u`` per meeting (buyers in row order, then
-    meeting number), a permutation of the buyers whose meetings produced at least one agreement
-    (their turns in the round), then one price per accepted trade (per agreement, before the
-    acceptance, when some buyer has a budget). The trades are listed by buyer row (then meeting
-    number), not in turn order.
+    meeting number), one uniform per buyer whose meetings produced at least one agreement (its
+    turn's key: the buyers take their turns in ascending key, a uniformly random order), then one
+    price per accepted trade (per agreement, before the acceptance, when some buyer has a
+    budget). The trades are listed by buyer row (then meeting number), not in turn order.
 
     One uniform serves both choices of a meeting: with ``d`` partners, ``floor(u d)`` picks the
     neighbour and the fractional part ``u d - floor(u d)``, again uniform on [0, 1) and independent
@@ -293,7 +293,6 @@ def propensity_round(
         price=price,
         cash=cash if budgets else None,
         unique_buyers=meetings == 1,
-        unique_order=meetings == 1,
     )
     take = hit if accepted.all() else hit[accepted]  # shape: (n_trades,)
     price = prices(take) if price is None else price[accepted]
@@ -348,20 +347,21 @@ def _truncated_normal(rng, mean, sd, floor: float, ceiling: float) -> np.ndarray
 def _turn_keys(
     hit: np.ndarray, rows: np.ndarray, meetings: int, rng: np.random.Generator
 ) -> np.ndarray:
-    """Turn of each agreed meeting (positions ``hit``, ascending) in the round, as an int key.
+    """Turn key of each agreed meeting (positions ``hit``, ascending) in the round.
 
-    The buyers with an agreement take their turns in a random order (one permutation draw);
-    a buyer's meetings share its key, and equal keys go in position order, which is meeting
-    order.
+    The buyers with an agreement take their turns in ascending order of one uniform each
+    (independent keys: a uniformly random order, as a permutation would give, for one draw per
+    buyer instead of a shuffle's bounded integers); a buyer's meetings share its key, and equal
+    keys go in position order, which is meeting order.
     """
     if meetings == 1:
-        return rng.permutation(hit.size)  # one meeting per buyer: every hit is a buyer
+        return rng.random(hit.size)  # one meeting per buyer: every hit is a buyer
     b = rows[hit]  # shape: (n_hit,)
     first = np.empty(hit.size, dtype=bool)
     first[0] = True
     np.not_equal(b[1:], b[:-1], out=first[1:])  # shape: (n_hit,) a buyer's first agreement
     run = np.cumsum(first) - 1  # shape: (n_hit,) which buyer (run) each agreement belongs to
-    return rng.permutation(int(run[-1]) + 1)[run]
+    return rng.random(int(run[-1]) + 1)[run]
 
 
 def pair_meeting(pop: Population, i: int, j: int, grid_points: int = 257):

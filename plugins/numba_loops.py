@@ -11,7 +11,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from propensim.plugins.numba_bits import permutation, standard_normal, uniform
+from propensim.plugins.numba_bits import standard_normal, uniform
 
 
 @numba.njit(cache=True, nogil=True)
@@ -461,9 +461,10 @@ def accept_one_width(
     """The second half of a propensity-matching round (one meeting per buyer, one width).
 
     Fuses the heights' product (``peak *= a_b; peak *= a_s``), the lonely buyers' mask, the
-    agreement test (``frac < peak``, or ``peak >= threshold``), the buyers' turns (one
-    ``rng.permutation`` of the agreements), the greedy acceptance in turn order (first agreement
-    of each seller with a unit left: ``_first_per_seller``) and the joint-curve prices of the
+    agreement test (``frac < peak``, or ``peak >= threshold``), the buyers' turns (one uniform
+    key per agreement, ``_turn_keys``), the greedy acceptance in turn order (first agreement of
+    each seller with a unit left, by key then position: ``_first_per_seller``) and the joint-curve
+    prices of the
     accepted trades (``(mu_b + mu_s) / 2 + sd z``). Returns ``(status, buyer, seller, price,
     edge)``: status 0 no agreement, 1 trades, 2 a case it does not fuse (a buyer with a budget or
     a seller with several units) -- then it has drawn nothing and the numpy path takes over.
@@ -492,19 +493,20 @@ def accept_one_width(
         i = hit[j]
         if np.isfinite(cash[first_row + i]) or remaining[partner[i]] > 1:
             return 2, empty_i, empty_i, np.empty(0), empty_i
-    turn = permutation(bits, nh)
-    never = np.iinfo(np.int64).max
-    first = np.full(remaining.shape[0], never)
+    key = np.empty(nh)
+    for j in range(nh):
+        key[j] = uniform(bits)
+    first = np.full(remaining.shape[0], -1)  # each seller's first agreement (by key, position)
     can = np.empty(nh, dtype=np.bool_)
     for j in range(nh):
         i = hit[j]
         s = partner[i]
         can[j] = remaining[first_row + i] > 0 and remaining[s] > 0
-        if can[j] and turn[j] < first[s]:
-            first[s] = turn[j]
+        if can[j] and (first[s] < 0 or key[j] < key[first[s]]):
+            first[s] = j
     m = 0
     for j in range(nh):
-        if can[j] and first[partner[hit[j]]] == turn[j]:
+        if can[j] and first[partner[hit[j]]] == j:
             hit[m] = hit[j]
             m += 1
     buyer = np.empty(m, dtype=np.int64)
@@ -770,6 +772,40 @@ def meet_rows(bits, deg, start, seller, mu, rows, scale, frac, partner, edge, ar
 
 
 @numba.njit(cache=True, nogil=True)
+def _ascending(key):
+    """``np.argsort(key, kind="stable")`` for keys on [0, 1): a bucket sort.
+
+    Key ``x`` goes to bucket ``floor(x n)`` (in position order), then each bucket is put in
+    order by insertion, moving an entry only past strictly larger keys (so equal keys stay in
+    position order). Uniform keys leave about one per bucket: linear time, where a comparison
+    sort of 500 keys cost more than the shuffle it replaces.
+    """
+    n = key.shape[0]
+    count = np.zeros(n + 1, dtype=np.int64)
+    slot = np.empty(n, dtype=np.int64)
+    for r in range(n):
+        b = min(int(key[r] * n), n - 1)
+        slot[r] = b
+        count[b + 1] += 1
+    for b in range(n):
+        count[b + 1] += count[b]
+    out = np.empty(n, dtype=np.int64)
+    fill = count[:-1].copy()
+    for r in range(n):
+        out[fill[slot[r]]] = r
+        fill[slot[r]] += 1
+    for b in range(n):
+        for a in range(count[b] + 1, count[b + 1]):
+            x = out[a]
+            q = a
+            while q > count[b] and key[out[q - 1]] > key[x]:
+                out[q] = out[q - 1]
+                q -= 1
+            out[q] = x
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
 def accept_rows(
     bits,
     frac,
@@ -788,8 +824,9 @@ def accept_rows(
 ):
     """The second half of a propensity round for meetings listed by buyer row (any meetings).
 
-    Fuses the heights' product, the agreement test, the turns (one ``rng.permutation`` of the
-    buyers with an agreement; a buyer's agreements share its turn, in meeting order), the
+    Fuses the heights' product, the agreement test, the turns (one uniform key per buyer with an
+    agreement, the buyers in ascending key, equal keys in row order: ``_turn_keys``; a buyer's
+    agreements share its turn, in meeting order), the
     greedy acceptance in turn order while both sides have units left (``greedy_accept``, which
     gives the same set as this loop) and the prices of the accepted meetings, in position order.
     Returns ``(status, buyer, seller, price, edge)`` as :func:`accept_one_width` (status 2, with
@@ -820,10 +857,10 @@ def accept_rows(
             run_start[runs] = j
             runs += 1
     run_start[runs] = nh
-    turn = permutation(bits, runs)  # turn[r]: the turn of run r
-    by_turn = np.empty(runs, dtype=np.int64)
+    key = np.empty(runs)
     for r in range(runs):
-        by_turn[turn[r]] = r
+        key[r] = uniform(bits)
+    by_turn = _ascending(key)  # the runs in turn order
     left = remaining.copy()
     accepted = np.zeros(nh, dtype=np.bool_)
     m = 0

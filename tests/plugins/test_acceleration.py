@@ -384,3 +384,16 @@ def test_the_fused_drift_pass_steps_over_elapsed_time_as_numpy_does(monkeypatch,
             acceleration.activate(None)
     (mu0, sigma0), (mu1, sigma1) = results
     assert np.array_equal(mu0, mu1) and np.array_equal(sigma0, sigma1)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 500, 4096])
+def test_turn_order_bucket_sort_matches_a_stable_argsort(forced, n):
+    # Reference: numpy's stable argsort (equal keys in position order), with ties forced in.
+    from propensim.plugins import numba_loops
+
+    rng = np.random.default_rng(n)
+    key = rng.random(n)
+    if n > 2:
+        key[rng.integers(0, n, n // 3)] = key[0]  # ties
+        key[-1] = np.nextafter(1.0, 0.0)  # the largest key below one
+    assert np.array_equal(numba_loops._ascending(key), np.argsort(key, kind="stable"))
