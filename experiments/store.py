@@ -41,6 +41,7 @@ import json
 import os
 import platform
 import sys
+import warnings
 from collections.abc import Iterable, Sequence
 from functools import cached_property
 from pathlib import Path
@@ -390,6 +391,18 @@ class Store:
             store._unlock()
             raise
         now = _now()
+        versions = package_versions()
+        earlier = list(old.get("earlier_versions") or [])
+        before = (old.get("versions") or {}).get("propensim")
+        if resumed and before and before != versions.get("propensim"):
+            earlier.append(old["versions"])
+            warnings.warn(
+                f"{shown_path(path)}: resuming runs made with propensim {before} under "
+                f"{versions.get('propensim')}; the same seed need not give the same draws in two "
+                "versions (the manifest keeps the earlier versions under earlier_versions)",
+                RuntimeWarning,
+                stacklevel=2,
+            )
         manifest = {
             "format": FORMAT,
             "format_version": FORMAT_VERSION,
@@ -397,7 +410,8 @@ class Store:
             "fingerprint": fingerprint,
             "root_seed": root_seed,
             "spec": spec,
-            "versions": package_versions(),
+            "versions": versions,
+            **({"earlier_versions": earlier} if earlier else {}),
             "command": list(command) if command is not None else list(sys.argv),
             "platform": platform.platform(),
             "created": old.get("created", now),

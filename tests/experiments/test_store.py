@@ -2,6 +2,7 @@
 
 import json
 import random
+import warnings
 from pathlib import Path
 
 import pandas as pd
@@ -284,3 +285,24 @@ def test_manifest_is_plain_json(tmp_path):
     text = (tmp_path / "r/manifest.json").read_text()
     assert "Infinity" not in text
     assert json.loads(text)["spec"]["population"]["cash"] == "inf"
+
+
+def test_resuming_under_another_propensim_version_warns_and_keeps_the_earlier(tmp_path):
+    from propensim.experiments.store import Store
+
+    plans = make_plans(replicates=1)
+    kwargs = dict(plans=plans, metrics=METRICS, fingerprint="f" * 64, name="x")
+    Store.create(tmp_path / "r", **kwargs).finish()
+    mpath = tmp_path / "r/manifest.json"
+    manifest = json.loads(mpath.read_text())
+    manifest["versions"]["propensim"] = "0.0.1"  # as if an earlier version had started it
+    mpath.write_text(json.dumps(manifest))
+    with pytest.warns(RuntimeWarning, match="made with propensim 0.0.1 under") as caught:
+        store = Store.create(tmp_path / "r", **kwargs)
+    assert len(caught) == 1 and "\n" not in str(caught[0].message)
+    assert store.manifest["earlier_versions"][0]["propensim"] == "0.0.1"
+    store.finish()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the same version again: no warning
+        Store.create(tmp_path / "r", **kwargs).finish()
+    assert json.loads(mpath.read_text())["earlier_versions"][0]["propensim"] == "0.0.1"
