@@ -16,6 +16,7 @@ import numba
 import numpy as np
 
 from propensim.plugins.numba_bits import uniform
+from propensim.plugins.numba_loops import counting_order
 
 
 # -- call auction ---------------------------------------------------------------------------
@@ -39,16 +40,7 @@ def _sort_units(comp, key, tie, n_comp):
     ``np.lexsort((tie, key, comp))``.
     """
     u = key.shape[0]
-    count = np.zeros(n_comp + 1, dtype=np.int64)
-    for a in range(u):
-        count[comp[a] + 1] += 1
-    for c in range(n_comp):
-        count[c + 1] += count[c]
-    order = np.empty(u, dtype=np.int64)
-    fill = count[:-1].copy()
-    for a in range(u):
-        order[fill[comp[a]]] = a
-        fill[comp[a]] += 1
+    order, count = counting_order(comp, n_comp)
     for c in range(n_comp):
         lo, hi = count[c], count[c + 1]
         if hi - lo > 1:

@@ -772,6 +772,26 @@ def meet_rows(bits, deg, start, seller, mu, rows, scale, frac, partner, edge, ar
 
 
 @numba.njit(cache=True, nogil=True)
+def counting_order(label, n_labels):
+    """A stable counting sort: ``(order, start)`` for labels on ``0 .. n_labels - 1``.
+
+    ``order`` lists the positions by label, ties in position order; label ``c``'s run is
+    ``order[start[c]:start[c + 1]]``.
+    """
+    start = np.zeros(n_labels + 1, dtype=np.int64)
+    for a in range(label.shape[0]):
+        start[label[a] + 1] += 1
+    for c in range(n_labels):
+        start[c + 1] += start[c]
+    order = np.empty(label.shape[0], dtype=np.int64)
+    fill = start[:-1].copy()
+    for a in range(label.shape[0]):
+        order[fill[label[a]]] = a
+        fill[label[a]] += 1
+    return order, start
+
+
+@numba.njit(cache=True, nogil=True)
 def _ascending(key):
     """``np.argsort(key, kind="stable")`` for keys on [0, 1): a bucket sort.
 
@@ -781,19 +801,10 @@ def _ascending(key):
     sort of 500 keys cost more than the shuffle it replaces.
     """
     n = key.shape[0]
-    count = np.zeros(n + 1, dtype=np.int64)
     slot = np.empty(n, dtype=np.int64)
     for r in range(n):
-        b = min(int(key[r] * n), n - 1)
-        slot[r] = b
-        count[b + 1] += 1
-    for b in range(n):
-        count[b + 1] += count[b]
-    out = np.empty(n, dtype=np.int64)
-    fill = count[:-1].copy()
-    for r in range(n):
-        out[fill[slot[r]]] = r
-        fill[slot[r]] += 1
+        slot[r] = min(int(key[r] * n), n - 1)
+    out, count = counting_order(slot, n)
     for b in range(n):
         for a in range(count[b] + 1, count[b + 1]):
             x = out[a]
