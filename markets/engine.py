@@ -32,6 +32,7 @@ from propensim.markets.build import (  # noqa: F401  (build_market etc. also imp
 from propensim.markets.recorder import Recorder
 from propensim.markets.schedule import PricePolicy, Schedule, TraderRemoval
 from propensim.plugins import acceleration, registry
+from propensim.plugins.metrics import MetricBatch
 from propensim.plugins.types import MarketState, TradingNetwork
 
 #: Metrics measured when none are named.
@@ -121,6 +122,7 @@ class MarketEngine(TraderRemoval):
         self.clearing = clearing
         self.drift = drift
         self.metrics = _resolve_metrics(metrics)
+        self.metric_batch = MetricBatch.of(self.metrics)
         self.replenish = bool(replenish)
         self.recorder = Recorder(
             self.metrics,

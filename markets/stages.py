@@ -179,6 +179,9 @@ def measure(market, outcome: RoundOutcome) -> dict[str, float]:
     """One row: the round number and every metric's value."""
     row: dict[str, float] = {"round": market.round}
     state = market.state
+    batch = market.metric_batch  # the built-in metrics in one compiled call: the same numbers
+    if batch is not None and batch.source is market.metrics and batch.fill(row, state, outcome):
+        return row
     for name, metric in market.metrics:
         row[name] = float(metric.measure(state, outcome))
     return row

@@ -642,7 +642,7 @@ def preference_gap(mu, role):
     return (0.0 + _pairwise(ms, 0, ns)) / ns - (0.0 + _pairwise(mb, 0, nb)) / nb
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def spring_energy(gamma, mu, value, sigma):
     """``EntropicEnergy`` of normal curves: ``sum(gamma (mu - v)^2 / (2 sigma^2))``."""
     n = mu.shape[0]
@@ -672,6 +672,73 @@ def same_units(role, capacity, stock, traded, value, old_value, old_units):
         if units != old_units[i]:
             return False
     return True
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=True)
+def round_metrics(
+    wanted,
+    buyer,
+    seller,
+    q,
+    price,
+    paid,
+    got,
+    value,
+    mu,
+    sigma,
+    gamma,
+    role,
+    capacity,
+    stock,
+    traded,
+    old_value,
+    old_units,
+    best,
+    p0,
+    out,
+):
+    """The built-in round metrics in one call: slot ``k`` of ``out`` when bit ``k`` of ``wanted``.
+
+    Fuses Volume (0), MeanPrice (1), VolumeWeightedPrice (2), PriceDispersion (3),
+    PreferenceGap (4), buyer and seller surplus (5, 6), AllocativeEfficiency (7: when its cached
+    benchmark ``best`` still holds for ``old_value`` and ``old_units``; ``best`` NaN: no
+    cache), SurplusGini (8), SmithAlpha about ``p0`` (9) and EntropicEnergy of normal curves
+    (10), calling each metric's own kernel above, so the numbers are theirs. Returns False when
+    the efficiency slot is wanted but left for the caller (no cache, or it no longer holds).
+    """
+    if wanted & 1:
+        units = 0
+        for i in range(q.shape[0]):
+            units += q[i]
+        out[0] = float(units)
+    if wanted & 2:
+        out[1] = mean_of(price)
+    if wanted & 4:
+        out[2] = weighted_price(price, q)
+    if wanted & 8:
+        out[3] = price_spread(price, q, 0.0, False)
+    if wanted & 16:
+        out[4] = preference_gap(mu, role)
+    if wanted & (32 | 64 | 128):
+        gain_b, gain_s = surplus_sums(value, buyer, seller, q, paid, got)
+        out[5] = gain_b
+        out[6] = gain_s
+    held = True
+    if wanted & 128:
+        held = not np.isnan(best) and same_units(
+            role, capacity, stock, traded, value, old_value, old_units
+        )
+        out[7] = ((out[5] + out[6]) / best if best > 0 else np.nan) if held else np.nan
+    if wanted & 256:
+        out[8] = surplus_gini(value, buyer, seller, q, paid, got, role.shape[0])
+    if wanted & 512:
+        if np.isfinite(p0) and p0 > 0:
+            out[9] = 100.0 * price_spread(price, q, p0, True) / p0
+        else:
+            out[9] = np.nan
+    if wanted & 1024:
+        out[10] = spring_energy(gamma, mu, value, sigma)
+    return held
 
 
 # -- settle: the checks and the tallies of a batch of trades ------------------------------------

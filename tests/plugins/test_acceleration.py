@@ -17,8 +17,10 @@ import numpy as np
 import pytest
 
 from propensim.agents.population import Population
+from propensim.markets import engine
 from propensim.markets.build import build_market
-from propensim.plugins import acceleration
+from propensim.markets.engine import DEFAULT_METRICS
+from propensim.plugins import acceleration, metrics
 from propensim.plugins.drift import _ou_apply
 from propensim.plugins.trade_checks import settle_trades
 from propensim.plugins.types import Trades
@@ -251,6 +253,17 @@ CASES = {
         "population__sigma": [3.0, 8.0],
         "drift": {"rules": [{"name": "anchor"}, {"name": "outcome"}], "noise": 0.5},
     },
+    # The built-in metrics in one call (metrics.MetricBatch): taxed prices (paid and got differ
+    # from the price), a binding ceiling, hubs removed mid-run (the efficiency benchmark's
+    # network changes) and a tax that starts and stops.
+    "tax, cap and a removal": {
+        "interventions": [
+            {"name": "unit_tax", "amount": 2.0, "start": 2, "until": 8},
+            {"name": "price_ceiling", "price": 92.0, "start": 4},
+            {"name": "remove_hubs", "k": 30, "start": 6},
+        ],
+        "metrics": [*DEFAULT_METRICS, "tax_revenue", "buyer_price", "unmet_demand"],
+    },
     "two forces, budgets": {
         "population__cash": 300.0,
         "market": {"keep_ledger": True, "replenish": False},
@@ -279,6 +292,63 @@ def test_markets_are_identical_with_and_without_kernels(monkeypatch, case):
     assert slow[0].equals(fast[0]) and slow[1].equals(fast[1])
     for a, b in zip(slow[2:], fast[2:], strict=True):
         assert np.array_equal(a, b)
+
+
+class _Halved(metrics.MeanPrice):
+    """A subclass of a built-in metric measures its own way: it must not be batched."""
+
+    def measure(self, state, outcome):
+        return 0.5 * super().measure(state, outcome)
+
+
+class _Trades:
+    """A third-party metric between built-in ones."""
+
+    def measure(self, state, outcome):
+        return float(len(outcome.trades))
+
+
+@pytest.mark.parametrize("curve", ["normal", "logistic"])
+def test_the_metric_batch_gives_each_metrics_own_number_in_its_place(monkeypatch, curve):
+    chosen = ["volume", _Halved(), "efficiency", _Trades(), "surplus_gini", "energy", "vwap"]
+    rows, fills = {}, []
+    real_fill = metrics.MetricBatch.fill
+
+    def counted(self, row, state, outcome):
+        done = real_fill(self, row, state, outcome)
+        fills.append(done)
+        return done
+
+    monkeypatch.setattr(metrics.MetricBatch, "fill", counted)
+    for how in ("numpy", "numba"):
+        monkeypatch.setenv("PROPENSIM_KERNELS", how)
+        config = _market_config(market={"keep_ledger": False, "replenish": False})
+        config["population"]["curve"] = curve
+        config["population"]["stock"] = 3
+        market = build_market(config, seed=5, mesa=False)
+        market.metrics[:] = engine._resolve_metrics(chosen)  # same list: the batch still serves
+        market.metric_batch = metrics.MetricBatch.of(market.metrics)
+        rows[how] = market.run(10)
+    names = [name for name, _ in market.metrics]
+    assert list(rows["numba"].columns) == ["round", *names]
+    assert rows["numpy"].equals(rows["numba"])
+    assert rows["numba"]["volume"].sum() > 0
+    # numpy: the batch declines every round; numba: it measures every round
+    assert fills == [False] * 10 + [True] * 10
+    batch = market.metric_batch
+    assert batch.slots[names.index("_halved")] == -1 and batch.slots[names.index("_trades")] == -1
+    # the stock runs out (no replenishment): the efficiency benchmark is recomputed on the way
+    assert rows["numba"]["efficiency"].notna().all()
+
+
+def test_a_market_whose_metric_list_is_swapped_measures_one_by_one(monkeypatch):
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    market = build_market(_market_config(), seed=2, mesa=False)
+    assert market.metric_batch is not None and market.metric_batch.source is market.metrics
+    market.metrics = engine._resolve_metrics(["volume", "mean_price"])
+    market.recorder.metrics = market.metrics
+    frame = market.run(3)
+    assert list(frame.columns) == ["round", "volume", "mean_price"]
 
 
 def test_the_choice_is_made_at_build_and_does_not_depend_on_work_or_length(monkeypatch):
