@@ -727,12 +727,14 @@ class MetricBatch:
             return False
         pop = state.population
         shape = pop.role.shape
-        traded = outcome.traded
+        # only efficiency's benchmark check reads the per-trader tally: reading it makes the
+        # outcome count every trader's units, which volume and prices do not need
+        traded = outcome.traded if self._efficiency is not None else _NO_INTS
         if not (
             pop.mu.shape == pop.sigma.shape == pop.gamma.shape == pop.value.shape == shape
             and pop.capacity.shape == pop.stock.shape == shape
             and isinstance(traded, np.ndarray)
-            and traded.shape == shape
+            and (self._efficiency is None or traded.shape == shape)
         ):
             return False
         wanted = self.wanted

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from propensim.agents.population import Population
-from propensim.markets import engine
+from propensim.markets import engine, stages
 from propensim.markets.build import build_market
 from propensim.markets.engine import DEFAULT_METRICS
 from propensim.plugins import acceleration, metrics
@@ -339,6 +339,25 @@ def test_the_metric_batch_gives_each_metrics_own_number_in_its_place(monkeypatch
     assert batch.slots[names.index("_halved")] == -1 and batch.slots[names.index("_trades")] == -1
     # the stock runs out (no replenishment): the efficiency benchmark is recomputed on the way
     assert rows["numba"]["efficiency"].notna().all()
+
+
+def test_the_metric_batch_counts_units_per_trader_only_for_efficiency(monkeypatch):
+    # Volume and prices read the trades alone: measuring them must not make the outcome tally
+    # every trader's units (two passes over n), which a sweep of volume and mean price would
+    # pay every round. Efficiency's benchmark check does read the tally.
+    monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    for chosen, tallied in ((["volume", "mean_price"], False), (["volume", "efficiency"], True)):
+        config = _market_config(metrics=chosen, drift={"name": "anchor"})
+        market = build_market(config, seed=3, mesa=False)
+        market.run(2)
+        stages.begin_round(market)
+        stages.apply_interventions(market)
+        outcome = stages.settle(market, stages.clear(market))
+        assert len(outcome.trades) > 0 and "traded" not in outcome.__dict__
+        row = {}
+        assert market.metric_batch.fill(row, market.state, outcome)
+        assert ("traded" in outcome.__dict__) is tallied
+        assert row["volume"] == float(outcome.trades.quantity.sum())
 
 
 def test_a_market_whose_metric_list_is_swapped_measures_one_by_one(monkeypatch):
