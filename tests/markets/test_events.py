@@ -414,3 +414,24 @@ def test_a_window_too_large_for_memory_says_so_without_a_ledger(monkeypatch):
     cfg = _config(horizon=1e6, window=1.0)
     cfg["market"] = {"keep_ledger": False}
     build_event_market(cfg, seed=1)  # short windows fit
+
+
+def test_the_windows_metrics_are_the_same_in_one_call_as_one_by_one(monkeypatch):
+    # The built-in metrics of a window are measured in one compiled call (MetricBatch) when
+    # the kernels are on: the same numbers as each metric's own measure, window by window, in
+    # a market whose stock runs down (the efficiency benchmark is recomputed on the way).
+    from propensim.markets.engine import DEFAULT_METRICS
+
+    frames = {}
+    for how in ("numpy", "numba"):
+        monkeypatch.setenv("PROPENSIM_KERNELS", how)
+        cfg = _config(horizon=12.0, window=1.0)
+        cfg["population"].update(n_buyers=30, n_sellers=25)
+        cfg["metrics"] = list(DEFAULT_METRICS)
+        cfg["drift"] = {"name": "anchor", "noise": 0.5}
+        market = build_event_market(cfg, seed=6)
+        assert market.metric_batch is not None
+        frames[how] = market.run()
+    assert frames["numba"]["volume"].sum() > 0 and frames["numba"]["efficiency"].notna().any()
+    assert list(frames["numba"].columns) == list(frames["numpy"].columns)
+    assert frames["numba"].equals(frames["numpy"])

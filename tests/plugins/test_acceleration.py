@@ -361,13 +361,19 @@ def test_the_metric_batch_counts_units_per_trader_only_for_efficiency(monkeypatc
 
 
 def test_a_market_whose_metric_list_is_swapped_measures_one_by_one(monkeypatch):
+    # The batch made for the default metrics must not serve a list put in its place: the new
+    # list's rows are those of a market built with it.
     monkeypatch.setenv("PROPENSIM_KERNELS", "numba")
+    chosen = ["volume", _Halved()]
     market = build_market(_market_config(), seed=2, mesa=False)
     assert market.metric_batch is not None and market.metric_batch.source is market.metrics
-    market.metrics = engine._resolve_metrics(["volume", "mean_price"])
+    market.metrics = engine._resolve_metrics(chosen)
     market.recorder.metrics = market.metrics
     frame = market.run(3)
-    assert list(frame.columns) == ["round", "volume", "mean_price"]
+    built_with_it = build_market(_market_config(metrics=chosen), seed=2, mesa=False).run(3)
+    assert list(frame.columns) == ["round", "volume", "_halved"]
+    assert frame.equals(built_with_it)
+    assert frame["_halved"].notna().all() and (frame["volume"] > 0).all()
 
 
 def test_the_choice_is_made_at_build_and_does_not_depend_on_work_or_length(monkeypatch):
