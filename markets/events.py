@@ -254,6 +254,15 @@ class EventMarket(TraderRemoval):
             network=network,
             round=0,
             equilibrium_price=_equilibrium_price(population),
+            round_capacity=False,  # holdings carry over; capacity does not limit a window
+        )
+        # The fixed welfare benchmark: the market before any intervention, every seller's
+        # stock to its best-valued partner (buyers' units are not limited: left at 0 here).
+        self.state._benchmark_source = (
+            population.role.copy(),
+            population.value.copy(),
+            np.where(population.role == SELLER, population.stock, 0),
+            network,
         )
         self.clearing = None  # the channels are the clearing rule
         self.policy = PricePolicy()

@@ -63,6 +63,7 @@ def max_surplus(
     units_b=None,
     units_s=None,
     method: str = "auto",
+    open_buyers: bool = False,
 ) -> float:
     """Largest total surplus ``sum (v_b - c_s)`` the traders can realise.
 
@@ -82,6 +83,10 @@ def max_surplus(
         Multi-unit traders are expanded into unit traders.
     method : {"auto", "dense", "sparse", "lp"}
         Solver for a restricted market (see Notes).
+    open_buyers : bool
+        Buyers may buy any number of units (``units_b`` is not used): each seller unit then goes
+        to its best-valued partner, ``sum_j u_j max(0, max_i v_i - c_j)``. The benchmark of event
+        mode, where capacity does not limit a window's trades.
 
     Returns
     -------
@@ -124,6 +129,8 @@ def max_surplus(
     >>> max_surplus([10, 8], [5, 7], edges=[(0, 0), (1, 1)])
     6.0
     """
+    if open_buyers:
+        return welfare.max_surplus_open_buyers(values, costs, edges, units_s=units_s)
     return welfare.max_surplus(
         values, costs, edges, units_b=units_b, units_s=units_s, method=method
     )
@@ -343,9 +350,12 @@ class AllocativeEfficiency:
     ``sum (v_b - c_s) q`` over the round's trades divided by :func:`max_surplus` of the traders'
     values and costs, restricted to the network's edges unless ``network.complete``. Units per
     trader: its capacity, and for a seller no more than the stock it held at the start of the
-    round (stock now plus units sold). Budgets are ignored in the benchmark. The benchmark is
-    kept in ``state.cache`` under the plugin's name and recomputed only when values, units or the
-    network change (checked in linear time each round). NaN when no surplus is achievable.
+    round (stock now plus units sold). In event mode (``state.round_capacity`` False: capacity
+    does not limit a window) buyers may buy any number of units and a seller's units are the
+    stock it held at the window's start, so each of them goes to its best-valued partner.
+    Budgets are ignored in the benchmark. The benchmark is kept in ``state.cache`` under the
+    plugin's name and recomputed only when values, units or the network change (checked in
+    linear time each round). NaN when no surplus is achievable.
 
     References
     ----------
@@ -364,7 +374,8 @@ class AllocativeEfficiency:
         net = state.network
         key = getattr(self, "plugin_name", "efficiency")
         cached = state.cache.get(key)
-        same = acceleration.kernel("same_units")
+        open_buyers = not state.round_capacity  # event mode: no capacity per window
+        same = None if open_buyers else acceleration.kernel("same_units")
         if cached is not None and same is not None and cached["network"] is net:
             traded = np.asarray(outcome.traded)
             columns = (pop.capacity, pop.stock, traded, pop.value, cached["value"], cached["units"])
@@ -372,7 +383,10 @@ class AllocativeEfficiency:
                 return cached["max_surplus"]  # one compiled pass instead of the checks below
         is_buyer = pop.role == BUYER  # shape: (n,)
         start_stock = pop.stock + np.asarray(outcome.traded)  # shape: (n,): before this round
-        units = np.where(is_buyer, pop.capacity, np.minimum(pop.capacity, start_stock))
+        if open_buyers:  # buyers' units are not limited (0 here: not used)
+            units = np.where(is_buyer, 0, start_stock)
+        else:
+            units = np.where(is_buyer, pop.capacity, np.minimum(pop.capacity, start_stock))
         if (
             cached is not None
             and cached["network"] is net
@@ -395,6 +409,7 @@ class AllocativeEfficiency:
             edges,
             units_b=units[buyers],
             units_s=units[sellers],
+            open_buyers=open_buyers,
         )
         state.cache[key] = {
             "network": net,
@@ -516,7 +531,9 @@ def fixed_benchmark(state: MarketState) -> float:
 
     The market leaves the pre-intervention roles, values, units and network in
     ``state._benchmark_source``; without it (a state built by hand) the current market is used.
-    Price units per round.
+    Price units per round. In event mode (``state.round_capacity`` False) buyers' units are not
+    limited: every unit of the sellers' starting stock goes to its best-valued partner, the most
+    the whole run could realise, since stock is not restored.
     """
     if np.isfinite(state.benchmark_surplus):
         return state.benchmark_surplus
@@ -534,7 +551,12 @@ def fixed_benchmark(state: MarketState) -> float:
         slot[sellers] = np.arange(sellers.size)
         edges = (slot[net.buyer], slot[net.seller])
     best = max_surplus(
-        value[buyers], value[sellers], edges, units_b=units[buyers], units_s=units[sellers]
+        value[buyers],
+        value[sellers],
+        edges,
+        units_b=units[buyers],
+        units_s=units[sellers],
+        open_buyers=not state.round_capacity,  # event mode: each seller unit to its best partner
     )
     state.benchmark_surplus = float(best)
     return state.benchmark_surplus
@@ -745,7 +767,7 @@ class MetricBatch:
         paid = tr.price if outcome.buyer_pays is None else outcome.buyer_pays
         got = tr.price if outcome.seller_gets is None else outcome.seller_gets
         best, old_value, old_units = _NAN, _NO_FLOATS, _NO_INTS
-        if self._efficiency is not None:
+        if self._efficiency is not None and state.round_capacity:  # event mode: by the metric
             cached = state.cache.get(self._efficiency_key)
             if (
                 cached is not None

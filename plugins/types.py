@@ -330,6 +330,10 @@ class MarketState:
     benchmark_surplus : float
         The largest achievable surplus per round of the market as it stood before any
         intervention (NaN until measured): the fixed benchmark of ``fixed_efficiency``.
+    round_capacity : bool
+        True in round mode: a trader's capacity limits its units each round. False in event
+        mode, where capacity means nothing: within a window a buyer may buy any number of
+        units and a seller sell its whole stock (benchmarks of achievable surplus follow).
     meetings : list or None
         When the market records meetings (``keep_meetings``), an empty list at the start of
         each clearing, to which a rule may append ``(buyer, seller, price, traded)`` arrays:
@@ -348,6 +352,7 @@ class MarketState:
     price_floor: float = float("-inf")
     price_ceiling: float = float("inf")
     benchmark_surplus: float = float("nan")
+    round_capacity: bool = True
     meetings: list | None = None
 
     @property

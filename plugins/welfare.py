@@ -244,6 +244,29 @@ def max_surplus(values, costs, edges=None, *, units_b=None, units_s=None, method
     return float((v_r[ri] - c_c[ci]).sum())
 
 
+def max_surplus_open_buyers(values, costs, edges=None, *, units_s=None) -> float:
+    """Largest total surplus when buyers may buy any number of units (see metrics.max_surplus).
+
+    With no limit on the buyers' side the assignment falls apart seller by seller: each seller
+    unit goes to its best-valued partner, so the maximum is ``sum_j u_j max(0, max_i v_i - c_j)``
+    over each seller's partners ``i``.
+    """
+    v = _float_vector("values", values)
+    c = _float_vector("costs", costs)
+    us = _units("units_s", c, units_s)
+    best = np.full(c.size, -np.inf)  # shape: (n_s,) the best value among each seller's partners
+    if edges is None:
+        if v.size:
+            best[:] = v.max()
+    else:
+        bi, sj = _edge_arrays(edges)
+        if bi.size and (bi.min() < 0 or bi.max() >= v.size or sj.min() < 0 or sj.max() >= c.size):
+            raise ValueError("edges must index into values (buyers) and costs (sellers)")
+        np.maximum.at(best, sj, v[bi])
+    gain = np.maximum(best - c, 0.0)  # shape: (n_s,) no partner (-inf): no gain
+    return float((us * gain).sum())
+
+
 def _compress(ids: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
     """The distinct ``ids`` ascending, and each entry's position among them (linear time)."""
     present = np.zeros(size, dtype=bool)

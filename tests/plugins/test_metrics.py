@@ -186,6 +186,37 @@ def test_max_surplus_sparse_random_network_matches_dense(method):
     assert max_surplus(values, costs, edges, method=method) == pytest.approx(ref, rel=1e-12)
 
 
+@pytest.mark.parametrize("complete", [True, False])
+def test_open_buyers_max_surplus_agrees_with_scipys_assignment(complete):
+    # Buyers without a unit limit (event mode's benchmark): no buyer can use more units than
+    # the sellers hold in all, so giving every buyer that many unit copies and solving the
+    # assignment with scipy.optimize.linear_sum_assignment (maximize=True) gives the maximum.
+    from scipy.optimize import linear_sum_assignment
+
+    rng = np.random.default_rng(7 if complete else 8)
+    for _ in range(20):
+        n_b, n_s = int(rng.integers(1, 6)), int(rng.integers(1, 6))
+        values, costs = rng.uniform(60, 120, n_b), rng.uniform(60, 120, n_s)
+        units_s = rng.integers(0, 4, n_s)
+        if complete:
+            edges, pairs = None, [(i, j) for i in range(n_b) for j in range(n_s)]
+        else:
+            pairs = sorted({(int(rng.integers(n_b)), int(rng.integers(n_s))) for _ in range(6)})
+            edges = (np.array([i for i, _ in pairs]), np.array([j for _, j in pairs]))
+        copies = max(int(units_s.sum()), 1)
+        seller_unit = np.repeat(np.arange(n_s), units_s)  # shape: (U,) one column per unit
+        grid = np.zeros((n_b * copies, seller_unit.size))  # rows: buyer copies
+        for i, j in pairs:
+            gain = max(values[i] - costs[j], 0.0)
+            grid[i * copies : (i + 1) * copies, seller_unit == j] = gain
+        rows, cols = linear_sum_assignment(grid, maximize=True)
+        expected = float(grid[rows, cols].sum())
+        got = max_surplus(values, costs, edges, units_s=units_s, open_buyers=True)
+        assert got == pytest.approx(expected, rel=1e-12, abs=1e-12)
+        # and never below the capped market's maximum (one unit per buyer)
+        assert got >= max_surplus(values, costs, edges, units_s=units_s) - 1e-9
+
+
 def test_max_surplus_bad_input():
     with pytest.raises(ValueError, match="units_b"):
         max_surplus([1, 2], [1], units_b=[1, -1])
