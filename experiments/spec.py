@@ -748,9 +748,15 @@ class _Builder:
                     )
                 continue
             try:
-                registry.get_plugin("metrics", name)
+                cls = registry.get_plugin("metrics", name)
             except registry.UnknownPluginError as exc:
                 raise self.error(("collect", "metrics", i), str(exc)) from None
+            if m["market"]["mode"] == "events":
+                from propensim.markets.events import metric_refusal
+
+                refusal = metric_refusal(name, cls)
+                if refusal:
+                    raise self.error(("collect", "metrics", i), refusal)
         return {
             "rounds": c["rounds"],
             "traders_every": c["traders_every"],

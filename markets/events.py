@@ -69,7 +69,7 @@ from propensim.markets.build import (
     spawn_streams,
 )
 from propensim.markets.schedule import TraderRemoval
-from propensim.plugins.metrics import MetricBatch
+from propensim.plugins.metrics import DeadweightLoss, FixedEfficiency, MetricBatch
 from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
@@ -227,6 +227,10 @@ class EventMarket(TraderRemoval):
         self.network = network
         self.drift = drift
         self.metrics = _resolve_metrics(metrics)
+        for name, metric in self.metrics:
+            refusal = metric_refusal(name, type(metric))
+            if refusal:
+                raise ValueError(f"metrics: {refusal}")
         self.metric_batch = MetricBatch.of(self.metrics)  # built-in metrics in one call
         self.method = method
         self.keep_ledger = bool(keep_ledger)
@@ -255,14 +259,6 @@ class EventMarket(TraderRemoval):
             round=0,
             equilibrium_price=_equilibrium_price(population),
             round_capacity=False,  # holdings carry over; capacity does not limit a window
-        )
-        # The fixed welfare benchmark: the market before any intervention, every seller's
-        # stock to its best-valued partner (buyers' units are not limited: left at 0 here).
-        self.state._benchmark_source = (
-            population.role.copy(),
-            population.value.copy(),
-            np.where(population.role == SELLER, population.stock, 0),
-            network,
         )
         self.clearing = None  # the channels are the clearing rule
         self.policy = PricePolicy()
@@ -718,6 +714,19 @@ class EventMarket(TraderRemoval):
 
 #: Interventions that need the round's clearing rule (price bounds, another rule).
 _NOT_IN_EVENTS = ("PriceCeiling", "PriceFloor", "SwitchClearing")
+#: Metrics whose benchmark is one round of the market with holdings restored every round.
+_ROUND_BENCHMARK_METRICS = (FixedEfficiency, DeadweightLoss)
+
+
+def metric_refusal(name: str, cls) -> str | None:
+    """Why event mode refuses the metric ``name`` of class ``cls``, or None if it is allowed."""
+    if isinstance(cls, type) and issubclass(cls, _ROUND_BENCHMARK_METRICS):
+        return (
+            f"{name!r} is not available in event mode (its benchmark is a round's largest "
+            "surplus, with holdings restored every round; here they carry over); allowed: "
+            "efficiency, total_surplus and the other metrics"
+        )
+    return None
 
 
 def _outcome(parts: list[Trades], trades: Trades, n: int) -> RoundOutcome:

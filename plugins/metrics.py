@@ -531,9 +531,7 @@ def fixed_benchmark(state: MarketState) -> float:
 
     The market leaves the pre-intervention roles, values, units and network in
     ``state._benchmark_source``; without it (a state built by hand) the current market is used.
-    Price units per round. In event mode (``state.round_capacity`` False) buyers' units are not
-    limited: every unit of the sellers' starting stock goes to its best-valued partner, the most
-    the whole run could realise, since stock is not restored.
+    Price units per round (round mode only: the event market refuses the metrics that use it).
     """
     if np.isfinite(state.benchmark_surplus):
         return state.benchmark_surplus
@@ -551,12 +549,7 @@ def fixed_benchmark(state: MarketState) -> float:
         slot[sellers] = np.arange(sellers.size)
         edges = (slot[net.buyer], slot[net.seller])
     best = max_surplus(
-        value[buyers],
-        value[sellers],
-        edges,
-        units_b=units[buyers],
-        units_s=units[sellers],
-        open_buyers=not state.round_capacity,  # event mode: each seller unit to its best partner
+        value[buyers], value[sellers], edges, units_b=units[buyers], units_s=units[sellers]
     )
     state.benchmark_surplus = float(best)
     return state.benchmark_surplus
