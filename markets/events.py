@@ -69,7 +69,12 @@ from propensim.markets.build import (
     spawn_streams,
 )
 from propensim.markets.schedule import TraderRemoval
-from propensim.plugins.metrics import DeadweightLoss, FixedEfficiency, MetricBatch
+from propensim.plugins.metrics import (
+    DeadweightLoss,
+    FixedEfficiency,
+    MetricBatch,
+    measure_row,
+)
 from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import MarketState, RoundOutcome, Trades, TradingNetwork
 
@@ -499,14 +504,7 @@ class EventMarket(TraderRemoval):
             np.add.at(self._units, t.seller, 1)
         self._drift_step()  # the window's end is always a drift step
         row: dict[str, float] = {"round": w, "time": self.time}
-        batch = self.metric_batch
-        if (
-            batch is None
-            or batch.source is not self.metrics
-            or not batch.fill(row, self.state, outcome)
-        ):
-            for name, metric in self.metrics:
-                row[name] = float(metric.measure(self.state, outcome))
+        measure_row(row, self.metrics, self.metric_batch, self.state, outcome)
         self._rows.append(row)
         if self.keep_ledger and len(window_trades):
             self._ledger.append((w, times[0] if len(times) == 1 else np.concatenate(times),

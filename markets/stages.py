@@ -16,6 +16,7 @@ import numpy as np
 
 from propensim.agents.population import BUYER, SELLER
 from propensim.plugins import acceleration
+from propensim.plugins.metrics import measure_row
 from propensim.plugins.trade_checks import check_trades, settle_trades
 from propensim.plugins.types import RoundOutcome, Trades
 
@@ -178,13 +179,8 @@ def drift(market, outcome: RoundOutcome) -> None:
 def measure(market, outcome: RoundOutcome) -> dict[str, float]:
     """One row: the round number and every metric's value."""
     row: dict[str, float] = {"round": market.round}
-    state = market.state
-    batch = market.metric_batch  # the built-in metrics in one compiled call: the same numbers
-    if batch is not None and batch.source is market.metrics and batch.fill(row, state, outcome):
-        return row
-    for name, metric in market.metrics:
-        row[name] = float(metric.measure(state, outcome))
-    return row
+    # the built-in metrics in one compiled call when they can be (the same numbers)
+    return measure_row(row, market.metrics, market.metric_batch, market.state, outcome)
 
 
 def record(market, outcome: RoundOutcome, row: dict[str, float]) -> None:

@@ -49,6 +49,7 @@ __all__ = [
     "max_surplus",
     "trade_surplus",
     "MetricBatch",
+    "measure_row",
 ]
 
 _NAN = float("nan")
@@ -800,6 +801,18 @@ class MetricBatch:
             else:
                 row[name] = values[slot]
         return True
+
+
+def measure_row(row: dict, metrics, batch, state: MarketState, outcome: RoundOutcome) -> dict:
+    """Add every metric's value to ``row``, in one call through ``batch`` when it serves them.
+
+    ``batch`` is the :class:`MetricBatch` made for ``metrics`` (or None); a list put in the
+    place of the one it was made for is measured one metric at a time.
+    """
+    if batch is None or batch.source is not metrics or not batch.fill(row, state, outcome):
+        for name, metric in metrics:
+            row[name] = float(metric.measure(state, outcome))
+    return row
 
 
 # -- units and aggregation, for tables and listings ------------------------------------------

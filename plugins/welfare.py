@@ -58,6 +58,14 @@ def _edge_arrays(edges) -> tuple[np.ndarray, np.ndarray]:
     return bi.astype(np.int64), sj.astype(np.int64)
 
 
+def _edges_within(edges, n_b: int, n_s: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_edge_arrays`, checked to index into ``n_b`` buyers and ``n_s`` sellers."""
+    bi, sj = _edge_arrays(edges)
+    if bi.size and (bi.min() < 0 or bi.max() >= n_b or sj.min() < 0 or sj.max() >= n_s):
+        raise ValueError("edges must index into values (buyers) and costs (sellers)")
+    return bi, sj
+
+
 def _steps(x: np.ndarray, units: np.ndarray, descending: bool):
     """Sorted distinct-trader steps: values and the cumulative units at the end of each step."""
     order = np.argsort(-x if descending else x, kind="stable")
@@ -210,9 +218,7 @@ def max_surplus(values, costs, edges=None, *, units_b=None, units_s=None, method
         k = min(vu.size, cu.size)
         gain = vu[:k] - cu[:k]  # shape: (k,), decreasing
         return float(gain[gain > 0].sum())
-    bi, sj = _edge_arrays(edges)
-    if bi.size and (bi.min() < 0 or bi.max() >= v.size or sj.min() < 0 or sj.max() >= c.size):
-        raise ValueError("edges must index into values (buyers) and costs (sellers)")
+    bi, sj = _edges_within(edges, v.size, c.size)
     positive = (v[bi] > c[sj]) & (ub[bi] > 0) & (us[sj] > 0)  # shape: (n_edges,)
     bi, sj = _dedupe(bi[positive], sj[positive], c.size)
     if bi.size == 0:
@@ -259,9 +265,7 @@ def max_surplus_open_buyers(values, costs, edges=None, *, units_s=None) -> float
         if v.size:
             best[:] = v.max()
     else:
-        bi, sj = _edge_arrays(edges)
-        if bi.size and (bi.min() < 0 or bi.max() >= v.size or sj.min() < 0 or sj.max() >= c.size):
-            raise ValueError("edges must index into values (buyers) and costs (sellers)")
+        bi, sj = _edges_within(edges, v.size, c.size)
         np.maximum.at(best, sj, v[bi])
     gain = np.maximum(best - c, 0.0)  # shape: (n_s,) no partner (-inf): no gain
     return float((us * gain).sum())
