@@ -70,6 +70,8 @@ class _Locator:
             if s.startswith(quote, self.i):
                 self.i += 3
                 while not s.startswith(quote, self.i):
+                    if self.i >= len(s):  # never closed (a key typed on the command line)
+                        raise ValueError("unterminated string")
                     self.i += 2 if (quote == '"""' and s[self.i] == "\\") else 1
                 self.i += 3
                 extra = 0
@@ -79,8 +81,10 @@ class _Locator:
                 return ""
         quote = s[self.i]
         self.i += 1
-        while s[self.i] != quote:
+        while self.i < len(s) and s[self.i] != quote:
             self.i += 2 if (quote == '"' and s[self.i] == "\\") else 1
+        if self.i >= len(s):
+            raise ValueError("unterminated string")
         self.i += 1
         raw = s[start : self.i]
         return tomllib.loads(f"k = {raw}")["k"]

@@ -484,6 +484,27 @@ def test_spec_problems_found_by_the_fuzzer_name_their_field(item, named, capsys,
     assert problems(["check", spec, "--set", item], capsys, store, cwd, [named, "--set"]) == []
 
 
+def test_an_unterminated_quoted_key_is_refused_not_read_for_ever():
+    # Found by the fuzzer: a --set key opening three single quotes that never close made the
+    # key reader loop for ever. An alarm turns a hang into a failure.
+    import signal
+
+    from propensim.experiments.spec import SpecError, parse_override
+
+    def stop(*_):
+        raise TimeoutError("the key reader did not return")
+
+    before = signal.signal(signal.SIGALRM, stop)
+    signal.alarm(10)
+    try:
+        for item in ("'''x=1", '"""x=1', "'x=1", '"x=1', "a.'''b=1"):
+            with pytest.raises(SpecError, match="is not a dotted field path"):
+                parse_override(item)
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, before)
+
+
 # -- found by the fuzzer, outside the spec checks ----------------------------------------------
 @pytest.mark.parametrize(
     "argv",
